@@ -1,0 +1,36 @@
+#!/usr/bin/env bash
+# Installs every build and test dependency of likeness from Debian's packages.
+# Idempotent: asks apt only for what is missing. Needs root (or sudo).
+set -euo pipefail
+
+PKGS=(
+  build-essential cmake pkg-config git
+  libturbojpeg0-dev libpng-dev libexif-dev libxml2-dev
+  libcjson-dev libsodium-dev libssl-dev libsqlite3-dev libinih-dev libmicrohttpd-dev
+  opencv-data
+  python3 python3-numpy python3-pil python3-skimage python3-sklearn python3-opencv
+  valgrind
+)
+
+missing=()
+for p in "${PKGS[@]}"; do
+  if ! dpkg-query -W -f='${Status}' "$p" 2>/dev/null | grep -q "install ok installed"; then
+    missing+=("$p")
+  fi
+done
+
+if [ ${#missing[@]} -eq 0 ]; then
+  echo "install-deps: all ${#PKGS[@]} packages present"
+  exit 0
+fi
+
+SUDO=""
+if [ "$(id -u)" -ne 0 ]; then
+  if command -v sudo >/dev/null; then SUDO="sudo"; else
+    echo "install-deps: missing packages (${missing[*]}) and not root; run as root or install sudo" >&2
+    exit 1
+  fi
+fi
+echo "install-deps: installing ${missing[*]}"
+$SUDO apt-get update -qq
+DEBIAN_FRONTEND=noninteractive $SUDO apt-get install -y -qq --no-install-recommends "${missing[@]}"
