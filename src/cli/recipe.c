@@ -1,0 +1,274 @@
+#include "recipe.h"
+
+#include <math.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+
+#include "cli.h"
+
+void recipe_default(recipe *r)
+{
+    /* Placeholder values, replaced by the View 1 tuning (README, "Training"). */
+    r->pca_dim = 400;
+    r->whiten = 1;
+    r->whiten_floor = 1e-6;
+    r->pairs_per_class = 20000;
+    r->C = 1.0;
+    r->loss = LK_SVM_HINGE;
+    r->seed = 20261202;
+}
+
+void recipe_describe(const recipe *r, char *buf, size_t size)
+{
+    snprintf(buf, size, "pca=%zu;whiten=%d;pairs_per_class=%zu;C=%g;loss=%s;seed=%llu",
+             r->pca_dim, r->whiten, r->pairs_per_class, r->C,
+             r->loss == LK_SVM_HINGE ? "hinge" : "squared_hinge", (unsigned long long)r->seed);
+}
+
+int recipe_rows_of_pairs(const featset *fs, const lk_pair *pairs, size_t n_pairs, size_t **rows,
+                         size_t *n_rows)
+{
+    uint8_t *seen = calloc(fs->n + 1, 1);
+    size_t *out = malloc((2 * n_pairs + 1) * sizeof *out);
+    if (!seen || !out) {
+        free(seen);
+        free(out);
+        return -1;
+    }
+    size_t n = 0;
+    for (size_t i = 0; i < n_pairs; i++) {
+        const char *p[2] = {pairs[i].path_a, pairs[i].path_b};
+        for (int k = 0; k < 2; k++) {
+            long r = featset_find(fs, p[k]);
+            if (r >= 0 && fs->ok[r] && !seen[r]) {
+                seen[r] = 1;
+                out[n++] = (size_t)r;
+            }
+        }
+    }
+    free(seen);
+    *rows = out;
+    *n_rows = n;
+    return 0;
+}
+
+/* Projects every image with features through m (k values each). */
+static float *project_all(const lk_model *m, const featset *fs, size_t *k_out, lk_error *err)
+{
+    size_t k = lk_model_pair_dim(m);
+    float *z = malloc((fs->n * k + 1) * sizeof *z);
+    double *tmp = malloc((k + 1) * sizeof *tmp);
+    if (!z || !tmp) {
+        free(z);
+        free(tmp);
+        lk_error_set(err, LK_ERR_NOMEM, "out of memory projecting %zu images", fs->n);
+        return NULL;
+    }
+    for (size_t i = 0; i < fs->n; i++) {
+        if (!fs->ok[i])
+            continue;
+        if (lk_model_project(m, fs->x + i * fs->dim, tmp, err) != LK_OK) {
+            free(z);
+            free(tmp);
+            return NULL;
+        }
+        for (size_t j = 0; j < k; j++)
+            z[i * k + j] = (float)tmp[j];
+    }
+    free(tmp);
+    *k_out = k;
+    return z;
+}
+
+int recipe_fit(const recipe *r, const char *feature_config, const featset *fs,
+               const size_t *pca_rows, size_t n_pca_rows, const lk_pair *pairs, size_t n_pairs,
+               lk_model *m, size_t *pairs_used, lk_error *err)
+{
+    const size_t d = fs->dim;
+    if (lk_model_set_features(m, feature_config, d, err) != LK_OK)
+        return -1;
+    lk_model_clear_projection(m);
+    lk_model_clear_standardisation(m);
+    if (r->pca_dim > 0) {
+        size_t n = n_pca_rows;
+        float *x = malloc((n * d + 1) * sizeof *x);
+        if (!x) {
+            lk_error_set(err, LK_ERR_NOMEM, "out of memory for %zu training images", n);
+            return -1;
+        }
+        for (size_t i = 0; i < n; i++)
+            memcpy(x + i * d, fs->x + pca_rows[i] * d, d * sizeof *x);
+        size_t k = r->pca_dim;
+        if (k > n - 1)
+            k = n - 1;
+        if (k > d)
+            k = d;
+        lk_pca_params pp = {.n_components = k, .whiten = 0, .threads = 0};
+        lk_pca *pca = NULL;
+        fprintf(stderr, "train: PCA of %zu images x %zu features to %zu components\n", n, d, k);
+        double t0 = cli_now();
+        lk_code rc = lk_pca_fit(x, n, d, &pp, &pca, err);
+        free(x);
+        if (rc != LK_OK)
+            return -1;
+        fprintf(stderr, "train: PCA done in %.1f s\n", cli_now() - t0);
+        const double *comp = lk_pca_components(pca), *var = lk_pca_variance(pca);
+        double *w = malloc(k * d * sizeof *w);
+        if (!w) {
+            lk_pca_free(pca);
+            lk_error_set(err, LK_ERR_NOMEM, "out of memory");
+            return -1;
+        }
+        /* Whitening (dividing each component by the square root of its
+         * variance) gives every retained direction equal weight before the
+         * squared difference; a floor keeps near-null directions from
+         * exploding (common practice). */
+        double floor_v = r->whiten_floor * (var[0] > 0 ? var[0] : 1);
+        for (size_t i = 0; i < k; i++) {
+            double s = r->whiten ? 1.0 / sqrt(var[i] > floor_v ? var[i] : floor_v) : 1.0;
+            for (size_t j = 0; j < d; j++)
+                w[i * d + j] = comp[i * d + j] * s;
+        }
+        rc = lk_model_set_projection(m, k, d, lk_pca_mean(pca), w, err);
+        free(w);
+        lk_pca_free(pca);
+        if (rc != LK_OK)
+            return -1;
+    }
+    size_t k;
+    float *z = project_all(m, fs, &k, err);
+    if (!z)
+        return -1;
+    float *px = malloc((n_pairs * k + 1) * sizeof *px);
+    int *y = malloc((n_pairs + 1) * sizeof *y);
+    if (!px || !y) {
+        free(z);
+        free(px);
+        free(y);
+        lk_error_set(err, LK_ERR_NOMEM, "out of memory for %zu pair vectors", n_pairs);
+        return -1;
+    }
+    size_t np = 0;
+    for (size_t i = 0; i < n_pairs; i++) {
+        long a = featset_find(fs, pairs[i].path_a), b = featset_find(fs, pairs[i].path_b);
+        if (a < 0 || b < 0 || !fs->ok[a] || !fs->ok[b])
+            continue;
+        lk_pair_vector(z + (size_t)a * k, z + (size_t)b * k, k, px + np * k);
+        y[np++] = pairs[i].genuine ? 1 : -1;
+    }
+    free(z);
+    lk_svm_params sp;
+    lk_svm_params_default(&sp);
+    sp.C = r->C;
+    sp.loss = r->loss;
+    sp.seed = r->seed;
+    lk_linear_model lm = {0};
+    fprintf(stderr, "train: linear SVM on %zu pairs x %zu dimensions (C=%g)\n", np, k, r->C);
+    double t0 = cli_now();
+    lk_code rc = lk_svm_train(px, y, np, k, &sp, &lm, err);
+    free(px);
+    free(y);
+    if (rc != LK_OK)
+        return -1;
+    fprintf(stderr, "train: SVM done in %.1f s, %d passes%s\n", cli_now() - t0, lm.iterations,
+            lm.converged ? "" : " (stopped at the pass limit)");
+    rc = lk_model_set_svm(m, k, lm.w, lm.b, err);
+    lk_linear_model_free(&lm);
+    if (pairs_used)
+        *pairs_used = np;
+    return rc == LK_OK ? 0 : -1;
+}
+
+int recipe_score(const lk_model *m, const featset *fs, const lk_pair *pairs, size_t n_pairs,
+                 double *values, int *labels, size_t *missing, lk_error *err)
+{
+    size_t k;
+    float *z = project_all(m, fs, &k, err);
+    if (!z)
+        return -1;
+    size_t nw;
+    const double *w;
+    double b;
+    lk_model_svm(m, &nw, &w, &b);
+    size_t miss = 0;
+    for (size_t i = 0; i < n_pairs; i++) {
+        long ia = featset_find(fs, pairs[i].path_a), ib = featset_find(fs, pairs[i].path_b);
+        labels[i] = pairs[i].genuine ? 1 : 0;
+        if (ia < 0 || ib < 0 || !fs->ok[ia] || !fs->ok[ib]) {
+            values[i] = -INFINITY;
+            miss++;
+            continue;
+        }
+        /* f = b + sum_i w_i (y_a,i - y_b,i)^2: the model's scoring formula
+         * without standardisation (docs/model-format.md). */
+        const float *za = z + (size_t)ia * k, *zb = z + (size_t)ib * k;
+        double f = b;
+        for (size_t j = 0; j < k; j++) {
+            double t = (double)za[j] - zb[j];
+            f += w[j] * t * t;
+        }
+        values[i] = f;
+    }
+    free(z);
+    if (missing)
+        *missing = miss;
+    return 0;
+}
+
+int recipe_calibrate(lk_model *m, const double *values, const int *labels, size_t n,
+                     double default_fmr, lk_error *err)
+{
+    /* Platt on finite values only: a pair without features carries no score. */
+    double *f = malloc((n + 1) * sizeof *f);
+    int *y = malloc((n + 1) * sizeof *y);
+    if (!f || !y) {
+        free(f);
+        free(y);
+        lk_error_set(err, LK_ERR_NOMEM, "out of memory");
+        return -1;
+    }
+    size_t nf = 0;
+    for (size_t i = 0; i < n; i++)
+        if (isfinite(values[i])) {
+            f[nf] = values[i];
+            y[nf++] = labels[i];
+        }
+    lk_platt_params pp;
+    lk_platt_params_default(&pp);
+    lk_platt pl;
+    if (lk_platt_fit(f, y, nf, &pp, &pl, err) != LK_OK ||
+        lk_model_set_platt(m, pl.A, pl.B, err) != LK_OK) {
+        free(f);
+        free(y);
+        return -1;
+    }
+    lk_roc roc = {0};
+    if (lk_roc_compute(f, y, nf, &roc, err) != LK_OK) {
+        free(f);
+        free(y);
+        return -1;
+    }
+    static const double targets[] = {1e-5, 1e-4, 1e-3, 1e-2, 1e-1};
+    enum { NT = sizeof targets / sizeof targets[0] };
+    lk_operating_point op[NT];
+    lk_roc_operating_table(&roc, targets, NT, op);
+    lk_model_operating_point rows[NT];
+    for (size_t i = 0; i < NT; i++) {
+        double t = isfinite(op[i].threshold) ? op[i].threshold : 1e300;
+        rows[i] = (lk_model_operating_point){
+            .target_fmr = targets[i],
+            .svm_threshold = t,
+            .prob_threshold = lk_platt_probability(&pl, t),
+            .measured_fmr = op[i].fmr,
+            .measured_fnmr = op[i].fnmr,
+            .impostor_comparisons = roc.n_impostor,
+            .genuine_comparisons = roc.n_genuine,
+            .supported = op[i].supported != 0,
+        };
+    }
+    lk_roc_free(&roc);
+    free(f);
+    free(y);
+    return lk_model_set_operating_points(m, rows, NT, default_fmr, err) == LK_OK ? 0 : -1;
+}

@@ -1,0 +1,261 @@
+"""Model file against outside references and against its written spec.
+
+* The checksum: Python's hashlib.blake2b(digest_size=32) (RFC 7693
+  BLAKE2b, CPython's own implementation) over the same bytes must equal the
+  digest the C writer stored.
+* The spec (docs/model-format.md): the file is read here by an independent
+  reader written from the spec's byte layout with struct/numpy; its fields
+  must agree with the C library's JSON, and the score of random feature
+  pairs computed by numpy from the documented formula must agree with
+  lk_model_score.
+* The other direction: a file written here from the spec (sections in
+  another order, plus an unknown optional section) must load in C and score
+  the same as numpy.
+"""
+import hashlib
+import json
+import os
+import struct
+import subprocess
+import sys
+import tempfile
+
+import numpy as np
+
+BIN = os.environ.get("LIKENESS_BIN", "")
+TOOL = os.path.join(BIN, "lkt_model_dump")
+if not os.path.exists(TOOL):
+    print(f"SKIPPED: {TOOL} is not built (set LIKENESS_BIN)", file=sys.stderr)
+    sys.exit(77)
+
+failures = 0
+
+
+def check(cond, msg):
+    global failures
+    if not cond:
+        failures += 1
+        print("FAIL:", msg, file=sys.stderr)
+
+
+def run(*args, ok=True):
+    r = subprocess.run([TOOL, *args], capture_output=True, text=True)
+    if ok and r.returncode != 0:
+        raise SystemExit(f"{TOOL} {' '.join(args)} failed: {r.stderr}")
+    return r
+
+
+# ---- independent reader, from docs/model-format.md ----
+
+def read_str(p, o):
+    (n,) = struct.unpack_from("<I", p, o)
+    s = p[o + 4:o + 4 + n]
+    assert len(s) == n
+    return s.decode("utf-8", errors="strict"), o + 4 + n
+
+
+def parse(data):
+    assert data[:8] == b"LKMODEL\0", "magic"
+    (version,) = struct.unpack_from("<I", data, 8)
+    assert version == 1, version
+    pos, sec = 12, {}
+    while True:
+        tag = data[pos:pos + 4]
+        flags, length = struct.unpack_from("<IQ", data, pos + 4)
+        payload = data[pos + 16:pos + 16 + length]
+        assert len(payload) == length
+        if tag == b"CSUM":
+            assert length == 32 and pos + 16 + 32 == len(data)
+            digest_at = pos + 16
+            break
+        assert tag not in sec
+        sec[tag] = payload
+        pos += 16 + length
+    m = {"checksum": data[digest_at:], "digest_at": digest_at}
+    m["id"] = sec[b"IDNT"].hex()
+    p = sec[b"FEAT"]
+    (m["d"],) = struct.unpack_from("<I", p, 0)
+    m["config"], o = read_str(p, 4)
+    assert o == len(p)
+    d = m["d"]
+    if b"PROJ" in sec:
+        p = sec[b"PROJ"]
+        k, dd = struct.unpack_from("<II", p, 0)
+        assert dd == d and len(p) == 8 + 8 * d + 8 * k * d
+        m["mu"] = np.frombuffer(p, "<f8", d, 8)
+        m["W"] = np.frombuffer(p, "<f8", k * d, 8 + 8 * d).reshape(k, d)
+    if b"STDZ" in sec:
+        p = sec[b"STDZ"]
+        (n,) = struct.unpack_from("<I", p, 0)
+        assert len(p) == 4 + 16 * n
+        m["smean"] = np.frombuffer(p, "<f8", n, 4)
+        m["sscale"] = np.frombuffer(p, "<f8", n, 4 + 8 * n)
+    p = sec[b"SVML"]
+    (n,) = struct.unpack_from("<I", p, 0)
+    (m["bias"],) = struct.unpack_from("<d", p, 4)
+    m["w"] = np.frombuffer(p, "<f8", n, 12)
+    assert len(p) == 12 + 8 * n
+    m["A"], m["B"] = struct.unpack_from("<dd", sec[b"PLAT"], 0)
+    p = sec[b"OPPT"]
+    n, m["default_fmr"] = struct.unpack_from("<Id", p, 0)
+    assert len(p) == 12 + 60 * n
+    m["rows"] = [struct.unpack_from("<5dQQI", p, 12 + 60 * i) for i in range(n)]
+    p = sec[b"PROV"]
+    pv = {}
+    pv["dataset"], o = read_str(p, 0)
+    pv["training_pairs"], pv["calibration_pairs"], pv["evaluation_pairs"] = struct.unpack_from("<3Q", p, o)
+    pv["created_utc"], o = read_str(p, o + 24)
+    pv["command_line"], o = read_str(p, o)
+    pv["software_version"], o = read_str(p, o)
+    assert o == len(p)
+    m["prov"] = pv
+    return m
+
+
+def np_score(m, a, b):
+    """docs/model-format.md "Scoring", literally (mean applied to each vector)."""
+    a = a.astype(np.float64)
+    b = b.astype(np.float64)
+    if "W" in m:
+        ya, yb = m["W"] @ (a - m["mu"]), m["W"] @ (b - m["mu"])
+    else:
+        ya, yb = a, b
+    z = (ya - yb) ** 2
+    if "smean" in m:
+        z = (z - m["smean"]) / m["sscale"]
+    f = float(m["w"] @ z + m["bias"])
+    return f, 1.0 / (1.0 + np.exp(m["A"] * f + m["B"]))
+
+
+def compare_scores(m, path, tmp, rng, tag):
+    d = m["d"]
+    npairs = 300
+    a = rng.standard_normal((npairs, d)).astype("<f4")
+    b = np.where(rng.random((npairs, 1)) < 0.3, a + 0.05 * rng.standard_normal((npairs, d)),
+                 rng.standard_normal((npairs, d))).astype("<f4")
+    inter = np.empty((2 * npairs, d), "<f4")
+    inter[0::2], inter[1::2] = a, b
+    fp = os.path.join(tmp, "pairs.f32")
+    inter.tofile(fp)
+    out = run("score", path, fp).stdout.split()
+    got = np.array(out, dtype=np.float64).reshape(npairs, 2)
+    want = np.array([np_score(m, a[i], b[i]) for i in range(npairs)])
+    ef = np.max(np.abs(got[:, 0] - want[:, 0]) / (1 + np.abs(want[:, 0])))
+    ep = np.max(np.abs(got[:, 1] - want[:, 1]))
+    print(f"{tag}: {npairs} pairs, largest relative SVM-value difference {ef:.3g}, "
+          f"probability {ep:.3g}, probabilities span {want[:, 1].min():.3f}..{want[:, 1].max():.3f}")
+    # The library projects a - b and numpy a - mu, b - mu: rounding only.
+    check(ef < 1e-9 and ep < 1e-9, f"{tag}: score differs from numpy (f {ef}, p {ep})")
+    check(want[:, 1].max() - want[:, 1].min() > 0.1, f"{tag}: probabilities do not spread")
+
+
+def close(x, y):
+    # cJSON prints %.15g unless that reads back within DBL_EPSILON (cJSON
+    # 1.7 print_number/compare_double), so JSON may lose the last bit.
+    return abs(x - y) <= 4e-16 * max(abs(x), abs(y))
+
+
+def check_json(m, path, tag):
+    j = json.loads(run("json", path).stdout)
+    check(j["id"] == m["id"], f"{tag}: id {j['id']} vs {m['id']}")
+    check(j["checksum_blake2b256"] == m["checksum"].hex(), f"{tag}: checksum hex")
+    check(j["features"]["config"] == m["config"] and j["features"]["dimension"] == m["d"],
+          f"{tag}: features")
+    check(close(j["platt"]["A"], m["A"]) and close(j["platt"]["B"], m["B"]), f"{tag}: platt")
+    check(close(j["default_target_fmr"], m["default_fmr"]), f"{tag}: default fmr")
+    check(len(j["operating_points"]) == len(m["rows"]), f"{tag}: row count")
+    for jr, r in zip(j["operating_points"], m["rows"]):
+        got = (jr["target_fmr"], jr["probability_threshold"], jr["svm_threshold"],
+               jr["measured_fmr"], jr["measured_fnmr"])
+        check(all(close(x, y) for x, y in zip(got, r[:5])) and
+              (jr["impostor_comparisons"], jr["genuine_comparisons"], jr["supported"]) ==
+              (r[5], r[6], bool(r[7] & 1)), f"{tag}: row {r}")
+    check(j["provenance"] == m["prov"], f"{tag}: provenance {j['provenance']} vs {m['prov']}")
+    check("weights" not in json.dumps(j), f"{tag}: JSON must not hold weights")
+
+
+# ---- independent writer, from docs/model-format.md ----
+
+def section(tag, payload, flags=1):
+    return tag + struct.pack("<IQ", flags, len(payload)) + payload
+
+
+def pstr(s):
+    b = s.encode("utf-8")
+    return struct.pack("<I", len(b)) + b
+
+
+def write_model(rng, d, k):
+    mu = rng.standard_normal(d)
+    W = rng.standard_normal((k, d)) / np.sqrt(d)
+    sm = rng.random(k)
+    ss = 0.5 + rng.random(k)
+    w = -np.abs(rng.standard_normal(k)) / np.sqrt(k)
+    bias, A, B = 2.0, -1.3, 0.2
+    rows = [(1e-4, 0.95, 1.2, 1.5e-4, 0.4, 50000, 900, 0),
+            (1e-3, 0.7, 0.4, 0.9e-3, 0.2, 50000, 900, 1)]
+    prov = {"dataset": "written by numpy", "training_pairs": 11, "calibration_pairs": 22,
+            "evaluation_pairs": 33, "created_utc": "2026-12-02T05:10:00Z",
+            "command_line": "", "software_version": "spec-1"}
+    config = "crop=64x64;lbp=u2"
+    secs = [
+        section(b"PROV", pstr(prov["dataset"]) + struct.pack("<3Q", 11, 22, 33) +
+                pstr(prov["created_utc"]) + pstr(prov["command_line"]) +
+                pstr(prov["software_version"]), flags=0),
+        section(b"OPPT", struct.pack("<Id", len(rows), 5e-3) +
+                b"".join(struct.pack("<5dQQI", *r) for r in rows)),
+        section(b"ZZZZ", b"future optional data", flags=0),
+        section(b"SVML", struct.pack("<Id", k, bias) + w.astype("<f8").tobytes()),
+        section(b"STDZ", struct.pack("<I", k) + sm.astype("<f8").tobytes() + ss.astype("<f8").tobytes()),
+        section(b"PROJ", struct.pack("<II", k, d) + mu.astype("<f8").tobytes() + W.astype("<f8").tobytes()),
+        section(b"PLAT", struct.pack("<dd", A, B)),
+        section(b"FEAT", struct.pack("<I", d) + pstr(config)),
+        section(b"IDNT", bytes(range(16))),
+    ]
+    body = b"LKMODEL\0" + struct.pack("<I", 1) + b"".join(secs)
+    body += b"CSUM" + struct.pack("<IQ", 1, 32)
+    data = body + hashlib.blake2b(body, digest_size=32).digest()
+    return data
+
+
+def main():
+    rng = np.random.default_rng(20261202)
+    with tempfile.TemporaryDirectory() as tmp:
+        cases = [("projection+standardisation", 64, 20, 1), ("projection", 48, 10, 0),
+                 ("no projection", 30, 0, 1)]
+        for seed, (tag, d, k, stdz) in enumerate(cases, start=5):
+            path = os.path.join(tmp, f"m{seed}.lkmodel")
+            run("make", path, str(seed), str(d), str(k), str(stdz))
+            data = open(path, "rb").read()
+            m = parse(data)
+            # RFC 7693 BLAKE2b-256 via hashlib, over every byte before the digest.
+            ref = hashlib.blake2b(data[:m["digest_at"]], digest_size=32).digest()
+            check(ref == m["checksum"], f"{tag}: stored checksum differs from hashlib.blake2b")
+            check(("W" in m) == (k > 0) and ("smean" in m) == bool(stdz), f"{tag}: optional sections")
+            check_json(m, path, tag)
+            compare_scores(m, path, tmp, rng, tag)
+            # One changed byte in a weight: refused as model_format.
+            bad = bytearray(data)
+            bad[len(bad) // 2] ^= 0x10
+            bp = os.path.join(tmp, "bad.lkmodel")
+            open(bp, "wb").write(bytes(bad))
+            r = run("json", bp, ok=False)
+            check(r.returncode == 2 and r.stderr.startswith("model_format:") and "checksum" in r.stderr,
+                  f"{tag}: corrupted file not refused: {r.returncode} {r.stderr}")
+
+        # A file written here from the spec alone.
+        data = write_model(rng, 40, 12)
+        path = os.path.join(tmp, "numpy.lkmodel")
+        open(path, "wb").write(data)
+        m = parse(data)
+        check(m["id"] == bytes(range(16)).hex(), "numpy file id")
+        check_json(m, path, "numpy-written")
+        compare_scores(m, path, tmp, rng, "numpy-written")
+
+    if failures:
+        print(f"{failures} checks failed", file=sys.stderr)
+        sys.exit(1)
+    print("all model checks passed")
+
+
+main()
