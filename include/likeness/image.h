@@ -31,20 +31,35 @@ typedef struct lk_decode_limits {
 
 #define LK_DEFAULT_MAX_PIXELS 40000000ULL /* 40 megapixels */
 #define LK_DEFAULT_MAX_SIDE 16384
+/* lk_image_new refuses more pixels than this whatever the limits say (keeps
+ * every size computation far from overflow and allocator limits). */
+#define LK_IMAGE_MAX_PIXELS (1ULL << 32)
 
-/* Returns a zero-filled image, or NULL (with err set) on bad size or no memory. */
+/* Returns a zero-filled image, or NULL with err set: LK_ERR_INVALID_ARGUMENT
+ * for a side <= 0 or channels other than 1 or 3, LK_ERR_IMAGE_TOO_LARGE over
+ * LK_IMAGE_MAX_PIXELS, LK_ERR_NOMEM. */
 lk_image *lk_image_new(int width, int height, int channels, lk_error *err);
 void lk_image_free(lk_image *img);
 lk_image *lk_image_clone(const lk_image *img, lk_error *err);
 
-/* Decodes JPEG or PNG bytes (sniffed by magic number) into RGB, with the EXIF
- * orientation applied so the result is upright. limits may be NULL for the
- * defaults. Errors: LK_ERR_IMAGE_UNSUPPORTED, LK_ERR_IMAGE_CORRUPT,
- * LK_ERR_IMAGE_TOO_LARGE, LK_ERR_NOMEM. */
+/* Decodes JPEG or PNG bytes (sniffed by magic number) into 8-bit RGB, with the
+ * EXIF orientation applied so the result is upright (as Pillow's
+ * ImageOps.exif_transpose). limits may be NULL for the defaults; they are
+ * checked against the header before any pixel is decoded.
+ * JPEG: baseline and progressive; gray, YCbCr, RGB, CMYK and YCCK
+ * (4-component files are read as Adobe-inverted CMYK and converted as Pillow
+ * does). PNG: every colour type and bit depth, interlaced or not; alpha and
+ * tRNS are dropped (not composited), 16-bit samples keep their high byte.
+ * Errors: LK_ERR_IMAGE_UNSUPPORTED (not JPEG/PNG, or a 12-bit, lossless or
+ * hierarchical JPEG), LK_ERR_IMAGE_CORRUPT (truncated or damaged; a libjpeg
+ * warning counts as damage), LK_ERR_IMAGE_TOO_LARGE, LK_ERR_NOMEM,
+ * LK_ERR_INVALID_ARGUMENT (out is NULL). *out is NULL on error. */
 lk_code lk_image_decode(const uint8_t *bytes, size_t len, const lk_decode_limits *limits,
                         lk_image **out, lk_error *err);
 
-/* Reads a whole file (at most max_bytes; 0 = 256 MiB) into a malloc'd buffer. */
+/* Reads a whole file (at most max_bytes; 0 = 256 MiB) into a malloc'd buffer
+ * the caller frees. Errors: LK_ERR_IO (cannot open or read),
+ * LK_ERR_IMAGE_TOO_LARGE (more than max_bytes), LK_ERR_NOMEM. */
 lk_code lk_read_file(const char *path, size_t max_bytes, uint8_t **bytes, size_t *len,
                      lk_error *err);
 
@@ -59,7 +74,7 @@ typedef enum lk_luma {
 } lk_luma;
 
 /* 8-bit grayscale copy. BT.601 rounds exactly as OpenCV's cvtColor(RGB2GRAY)
- * does (14-bit fixed point), so detection sees the same pixels OpenCV would. */
+ * does (15-bit fixed point), so detection sees the same pixels OpenCV would. */
 lk_image *lk_image_to_gray(const lk_image *img, lk_luma luma, lk_error *err);
 
 /* Grayscale as doubles in [0,1] into out[width*height] (caller-allocated);

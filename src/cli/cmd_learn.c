@@ -231,7 +231,7 @@ int cmd_train(int argc, char **argv)
     const char *data = NULL, *pairs_file = NULL, *calib_file = NULL, *lfw_root = NULL;
     const char *out = NULL, *cache = NULL;
     double calib_share = 0.2, default_fmr = 0.001;
-    size_t threads = 0, seed;
+    size_t threads = 0, seed = 0;
     int center_fallback = 0, o;
     recipe r;
     recipe_default(&r);
