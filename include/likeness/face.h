@@ -10,6 +10,8 @@
 #ifndef LIKENESS_FACE_H
 #define LIKENESS_FACE_H
 
+#include <stdint.h>
+
 #include "likeness/error.h"
 #include "likeness/image.h"
 
@@ -33,7 +35,8 @@ typedef struct lk_rect {
 
 typedef struct lk_detect_params {
     double scale_factor; /* step between scales, > 1 (default 1.1) */
-    int min_neighbors;   /* groups with fewer raw windows are dropped (default 3) */
+    int min_neighbors;   /* groups of min_neighbors raw windows or fewer are dropped, as in
+                            OpenCV's groupRectangles (default 3; 0 = raw windows) */
     int min_size;        /* smallest box side searched, in input pixels (0 = cascade window) */
     int max_size;        /* largest box side searched, in input pixels (0 = no limit) */
     int max_long_side;   /* search on a copy downscaled so its long side is at most this
@@ -52,6 +55,63 @@ lk_code lk_detect(const lk_cascade *c, const lk_image *gray, const lk_detect_par
  * coordinates); used to search for eyes inside a face box. */
 lk_code lk_detect_roi(const lk_cascade *c, const lk_image *gray, const lk_rect *roi,
                       const lk_detect_params *p, lk_rect **rects, int *count, lk_error *err);
+
+/* Orders rects in place by the primary-face rule: larger area first; equal
+ * areas by nearness of the box centre to the centre of an image of
+ * image_width x image_height; then more neighbors; then top-left first. */
+void lk_primary_rank(lk_rect *rects, int count, int image_width, int image_height);
+
+/* ---- Building blocks, public so they can be checked on their own. ---- */
+
+/* What a loaded cascade is made of. */
+typedef enum lk_cascade_feature { LK_CASCADE_HAAR = 1, LK_CASCADE_LBP = 2 } lk_cascade_feature;
+typedef struct lk_cascade_info {
+    lk_cascade_feature feature_type;
+    int window_width, window_height;
+    int stages, weak_classifiers, features;
+    int max_nodes_per_tree; /* 1: every weak classifier is a stump */
+    int has_tilted;         /* some Haar feature uses the 45-degree integral */
+} lk_cascade_info;
+void lk_cascade_get_info(const lk_cascade *c, lk_cascade_info *info);
+
+/* Runs the cascade on the single window whose top-left corner is (x, y) of
+ * gray, at the cascade's own size (no scaling). *accepted is 1 if every stage
+ * passed; *stages_passed counts the stages passed. A window that the Haar
+ * variance gate rejects (flat window) counts as rejected with 0 stages. */
+lk_code lk_cascade_classify_window(const lk_cascade *c, const lk_image *gray, int x, int y,
+                                   int *accepted, int *stages_passed, lk_error *err);
+
+/* Integral images of an 8-bit image (w x h, row stride src_stride) into
+ * tables of (w+1) x (h+1) with row stride dst_stride (>= w+1):
+ *   sum(X,Y)    = sum of I(x,y) over x < X, y < Y (Viola & Jones 2001, eq. 1),
+ *   sqsum(X,Y)  = same over I(x,y)^2, kept modulo 2^32 (differences of four
+ *                 entries are exact whenever the true window sum fits 32 bits),
+ *   tilted(X,Y) = sum of I(x,y) over y < Y, |x - X + 1| <= Y - 1 - y (the
+ *                 45-degree table of Lienhart & Maydt, ICIP 2002, in the layout
+ *                 of OpenCV's integral()).
+ * sqsum and tilted may be NULL. Fails only on bad arguments or, when tilted
+ * is asked for, out of memory for its O(w+h) scratch. */
+lk_code lk_integral(const uint8_t *src, int w, int h, int src_stride, int32_t *sum,
+                    uint32_t *sqsum, int32_t *tilted, int dst_stride, lk_error *err);
+
+/* Bilinear resize of an 8-bit gray image to dst->width x dst->height with the
+ * bit-exact fixed-point arithmetic of OpenCV's resize(INTER_LINEAR_EXACT)
+ * (8-bit weights), which OpenCV 4's cascade search uses at every scale; an
+ * exact halving averages 2x2 blocks as OpenCV does. Both images 1-channel. */
+lk_code lk_resize_linear_u8(const lk_image *src, lk_image *dst, lk_error *err);
+
+/* Box-filter (pixel-area) downscale of an 8-bit gray image, for shrinking a
+ * large input before the search; dst must be no larger than src. */
+lk_code lk_resize_area_u8(const lk_image *src, lk_image *dst, lk_error *err);
+
+/* The classic grouping of raw detections (OpenCV's groupRectangles): windows
+ * are joined into classes by the similarity relation with eps (0.2 in the
+ * detector), classes with <= min_neighbors members are dropped, each class is
+ * averaged, then boxes lying inside a box with clearly more support are
+ * dropped. Works in place on rects[0..*count); neighbors gets the class size.
+ * min_neighbors <= 0 keeps the raw windows (neighbors = 1). */
+lk_code lk_group_rects(lk_rect *rects, int *count, int min_neighbors, double eps,
+                       lk_error *err);
 
 #ifdef __cplusplus
 }
