@@ -176,6 +176,26 @@ lk_code lk_pca_fit(const float *x, size_t n, size_t d, const lk_pca_params *para
 lk_code lk_pca_from_parts(size_t d, size_t k, const double *mean,
                           const double *components, const double *variance,
                           int whiten, lk_pca **out, lk_error *err);
+/* Randomized PCA for large n and d where only the top components are
+ * wanted: randomized subspace iteration (Halko, Martinsson & Tropp, "Finding
+ * structure with randomness", SIAM Review 53(2), 2011, Algorithms 4.4 and
+ * 5.1). Costs about (2 + 2 q) * 2 n d l flops for l = k + oversampling,
+ * against O(min(n,d)^3) for lk_pca_fit. Components match the exact ones to
+ * within the accuracy the spectrum's decay allows (the paper's bounds);
+ * power_iterations q = 2 is ample for image features. */
+typedef struct lk_rpca_params {
+    size_t n_components;
+    size_t oversampling;  /* extra random directions (default 20) */
+    int power_iterations; /* q (default 2) */
+    int whiten;
+    int threads;          /* 1 or 2 (0 = 2) */
+    uint64_t seed;
+} lk_rpca_params;
+
+void lk_rpca_params_default(lk_rpca_params *p);
+lk_code lk_pca_fit_randomized(const float *x, size_t n, size_t d, const lk_rpca_params *params,
+                              lk_pca **out, lk_error *err);
+
 /* out: n x k floats. */
 void lk_pca_project(const lk_pca *pca, const float *x, size_t n, float *out);
 size_t lk_pca_input_dim(const lk_pca *pca);

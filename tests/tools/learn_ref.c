@@ -9,6 +9,7 @@
  *   roc   scores genuine roc_out summary_out
  *         roc_out: k x 3 (threshold, FMR, FNMR); summary_out: 1 x 16, see below
  *   pca   X k whiten threads Xtest comp_out var_out mean_out proj_out
+ *   rpca  the same arguments, randomized PCA
  *   std   X Xtest params_out proj_out   params_out: 2 x d (mean, scale)
  *   pairs pairs_file lfw_root           prints "fold genuine path_a path_b"
  *                                       lines, or the error and exit 1 */
@@ -198,6 +199,8 @@ static int cmd_roc(char **a)
     return ok ? 0 : 1;
 }
 
+static int randomized;
+
 static int cmd_pca(char **a)
 {
     mat X, T;
@@ -208,7 +211,18 @@ static int cmd_pca(char **a)
     lk_pca *pca;
     lk_error err;
     double t0 = now();
-    if (lk_pca_fit(x, (size_t)X.r, (size_t)X.c, &pp, &pca, &err) != LK_OK) {
+    lk_code rc;
+    if (randomized) {
+        lk_rpca_params rp;
+        lk_rpca_params_default(&rp);
+        rp.n_components = pp.n_components;
+        rp.whiten = pp.whiten;
+        rp.threads = pp.threads;
+        rc = lk_pca_fit_randomized(x, (size_t)X.r, (size_t)X.c, &rp, &pca, &err);
+    } else {
+        rc = lk_pca_fit(x, (size_t)X.r, (size_t)X.c, &pp, &pca, &err);
+    }
+    if (rc != LK_OK) {
         fprintf(stderr, "pca: %s\n", err.message);
         return 1;
     }
@@ -231,6 +245,13 @@ static int cmd_pca(char **a)
     free(X.v);
     free(T.v);
     return ok ? 0 : 1;
+}
+
+/* Same arguments as pca, with lk_pca_fit_randomized. */
+static int cmd_rpca(char **a)
+{
+    randomized = 1;
+    return cmd_pca(a);
 }
 
 static int cmd_std(char **a)
@@ -283,7 +304,7 @@ int main(int argc, char **argv)
         int nargs;
         int (*fn)(char **);
     } cmds[] = {{"svm", 9, cmd_svm}, {"platt", 3, cmd_platt}, {"roc", 4, cmd_roc},
-                {"pca", 9, cmd_pca}, {"std", 4, cmd_std}, {"pairs", 2, cmd_pairs}};
+                {"pca", 9, cmd_pca}, {"rpca", 9, cmd_rpca}, {"std", 4, cmd_std}, {"pairs", 2, cmd_pairs}};
     for (size_t i = 0; argc >= 2 && i < sizeof cmds / sizeof cmds[0]; i++)
         if (strcmp(argv[1], cmds[i].name) == 0) {
             if (argc - 2 != cmds[i].nargs) {
@@ -293,6 +314,6 @@ int main(int argc, char **argv)
             }
             return cmds[i].fn(argv + 2);
         }
-    fprintf(stderr, "usage: lkt_learn_ref svm|platt|roc|pca|std|pairs ... (see the source's header)\n");
+    fprintf(stderr, "usage: lkt_learn_ref svm|platt|roc|pca|rpca|std|pairs ... (see the source's header)\n");
     return 2;
 }

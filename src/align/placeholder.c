@@ -1,1 +1,0 @@
-/* placeholder until the module lands */ typedef int lk_align_placeholder_t;
