@@ -36,6 +36,11 @@ typedef struct lk_engine_config {
      * (used only for benchmark protocols such as LFW, whose images are
      * centred on one face; never by the service). Fractions of the image. */
     int center_fallback;
+    /* Faces smaller than this fraction of the image's short side are not
+     * searched for (the detector's min_size is raised to it): a verification
+     * photo shows one large face, and the search over small scales costs
+     * most of the detection time. 0 disables. Default 1/10. */
+    double min_face_fraction;
     double center_box[4]; /* x, y, width, height as fractions; default 0.3,0.3,0.4,0.4 */
 } lk_engine_config;
 
@@ -58,7 +63,12 @@ typedef struct lk_analysis {
     int width, height;      /* decoded, upright image size */
     lk_face_find find;      /* faces, primary box, eyes */
     lk_quality quality;     /* measures and reasons (LK_QR_* bits) */
-    int center_fallback;    /* 1: no face was found; the fixed central box was used */
+    int center_fallback;
+    /* Faces smaller than this fraction of the image's short side are not
+     * searched for (the detector's min_size is raised to it): a verification
+     * photo shows one large face, and the search over small scales costs
+     * most of the detection time. 0 disables. Default 1/10. */
+    double min_face_fraction;    /* 1: no face was found; the fixed central box was used */
     int has_features;       /* 1: features were written (a face, or the fallback, was there) */
     double stage_ms[LK_STAGE_COUNT];
 } lk_analysis;

@@ -67,13 +67,18 @@ static void *worker(void *arg)
     return NULL;
 }
 
-/* Cache key: BLAKE2b-256 over the feature configuration and every path. */
+/* Cache key: BLAKE2b-256 over the feature and engine configuration and every path. */
 static void cache_key(const lk_engine *e, const featset *fs, unsigned char key[32])
 {
     crypto_generichash_state st;
     crypto_generichash_init(&st, NULL, 0, 32);
     const char *cfg = lk_engine_feature_config(e);
     crypto_generichash_update(&st, (const unsigned char *)cfg, strlen(cfg) + 1);
+    /* Detection, alignment and quality settings change features too; the
+     * configuration struct is zero-filled before it is set, so its bytes
+     * (padding included) are a faithful key. */
+    const lk_engine_config *ec = lk_engine_get_config(e);
+    crypto_generichash_update(&st, (const unsigned char *)ec, sizeof *ec);
     for (size_t i = 0; i < fs->n; i++)
         crypto_generichash_update(&st, (const unsigned char *)fs->paths[i],
                                   strlen(fs->paths[i]) + 1);

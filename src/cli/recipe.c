@@ -53,30 +53,44 @@ int recipe_rows_of_pairs(const featset *fs, const lk_pair *pairs, size_t n_pairs
     return 0;
 }
 
-/* Projects every image with features through m (k values each). */
-static float *project_all(const lk_model *m, const featset *fs, size_t *k_out, lk_error *err)
+/* Projects, through m, the images with features that the pairs use (k
+ * values each; other rows are left unset): projecting is k*d work per image,
+ * so only the needed ones are done. */
+static float *project_pairs(const lk_model *m, const featset *fs, const lk_pair *pairs,
+                            size_t n_pairs, size_t *k_out, lk_error *err)
 {
     size_t k = lk_model_pair_dim(m);
     float *z = malloc((fs->n * k + 1) * sizeof *z);
     double *tmp = malloc((k + 1) * sizeof *tmp);
-    if (!z || !tmp) {
+    uint8_t *need = calloc(fs->n + 1, 1);
+    if (!z || !tmp || !need) {
         free(z);
         free(tmp);
+        free(need);
         lk_error_set(err, LK_ERR_NOMEM, "out of memory projecting %zu images", fs->n);
         return NULL;
     }
+    for (size_t i = 0; i < n_pairs; i++) {
+        long a = featset_find(fs, pairs[i].path_a), b = featset_find(fs, pairs[i].path_b);
+        if (a >= 0)
+            need[a] = 1;
+        if (b >= 0)
+            need[b] = 1;
+    }
     for (size_t i = 0; i < fs->n; i++) {
-        if (!fs->ok[i])
+        if (!fs->ok[i] || !need[i])
             continue;
         if (lk_model_project(m, fs->x + i * fs->dim, tmp, err) != LK_OK) {
             free(z);
             free(tmp);
+            free(need);
             return NULL;
         }
         for (size_t j = 0; j < k; j++)
             z[i * k + j] = (float)tmp[j];
     }
     free(tmp);
+    free(need);
     *k_out = k;
     return z;
 }
@@ -104,11 +118,22 @@ int recipe_fit(const recipe *r, const char *feature_config, const featset *fs,
             k = n - 1;
         if (k > d)
             k = d;
-        lk_pca_params pp = {.n_components = k, .whiten = 0, .threads = 0};
         lk_pca *pca = NULL;
         fprintf(stderr, "train: PCA of %zu images x %zu features to %zu components\n", n, d, k);
         double t0 = cli_now();
-        lk_code rc = lk_pca_fit(x, n, d, &pp, &pca, err);
+        lk_code rc;
+        if ((n < d ? n : d) > 2000) {
+            /* The exact fit is cubic in min(n, d); beyond a few thousand the
+             * randomized fit (Halko et al. 2011) is the only practical one. */
+            lk_rpca_params rp;
+            lk_rpca_params_default(&rp);
+            rp.n_components = k;
+            rp.seed = r->seed;
+            rc = lk_pca_fit_randomized(x, n, d, &rp, &pca, err);
+        } else {
+            lk_pca_params pp = {.n_components = k, .whiten = 0, .threads = 0};
+            rc = lk_pca_fit(x, n, d, &pp, &pca, err);
+        }
         free(x);
         if (rc != LK_OK)
             return -1;
@@ -137,7 +162,7 @@ int recipe_fit(const recipe *r, const char *feature_config, const featset *fs,
             return -1;
     }
     size_t k;
-    float *z = project_all(m, fs, &k, err);
+    float *z = project_pairs(m, fs, pairs, n_pairs, &k, err);
     if (!z)
         return -1;
     float *px = malloc((n_pairs * k + 1) * sizeof *px);
@@ -184,7 +209,7 @@ int recipe_score(const lk_model *m, const featset *fs, const lk_pair *pairs, siz
                  double *values, int *labels, size_t *missing, lk_error *err)
 {
     size_t k;
-    float *z = project_all(m, fs, &k, err);
+    float *z = project_pairs(m, fs, pairs, n_pairs, &k, err);
     if (!z)
         return -1;
     size_t nw;

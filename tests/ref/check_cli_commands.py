@@ -82,7 +82,7 @@ def main():
         check(rc == 0 and os.path.getsize(vec) == 4 * j["dimension"],
               "features writes dimension x float32")
 
-        model = os.path.join(SOURCE, "models", "likeness-lfw.lkm")
+        model = os.path.join(SOURCE, "models", "likeness-lfw.lkmodel")
         if not os.path.exists(model):
             check(False, f"default model {model} is missing")
         else:
