@@ -77,8 +77,8 @@ void lk_eyes_estimate(const lk_rect *face, const lk_eye_params *p, lk_eyes *out)
 typedef struct lk_align_params {
     int crop_width;  /* default 96 */
     int crop_height; /* default 112 */
-    lk_point left_eye;  /* where the image-left eye lands (default 32, 44) */
-    lk_point right_eye; /* where the image-right eye lands (default 64, 44) */
+    lk_point left_eye;  /* where the image-left eye lands (default 30.3, 51.7) */
+    lk_point right_eye; /* where the image-right eye lands (default 65.5, 51.7) */
 } lk_align_params;
 
 void lk_align_params_default(lk_align_params *p);

@@ -196,6 +196,23 @@ void lk_rpca_params_default(lk_rpca_params *p);
 lk_code lk_pca_fit_randomized(const float *x, size_t n, size_t d, const lk_rpca_params *params,
                               lk_pca **out, lk_error *err);
 
+/* Eigen-decomposition of the symmetric l x l matrix a (row-major, destroyed)
+ * by cyclic Jacobi rotations: eigenvalues on a's diagonal (unsorted),
+ * eigenvectors in the columns of v (l x l). For the small matrices of
+ * randomized PCA and WCCN (l up to a few hundred). */
+void lk_symmetric_eigen(double *a, double *v, size_t l);
+
+/* Within-class covariance normalisation (WCCN; Hatch, Kajarekar & Stolcke,
+ * "Within-class covariance normalization for SVM-based speaker
+ * recognition", ICSLP 2006): from n vectors z (n x k) with class labels,
+ * the within-class covariance Sw = (1/N) sum_c sum_{i in c} (z_i - m_c)(z_i - m_c)^T
+ * over classes with at least two members (N their total), and out (k x k)
+ * = Sw^(-1/2), its symmetric inverse square root, with reg * lambda_max added
+ * to every eigenvalue so that rarely seen directions are not blown up.
+ * Classes are any int labels. LK_ERR_DATA when no class has two members. */
+lk_code lk_wccn_fit(const float *z, const int *labels, size_t n, size_t k, double reg,
+                    double *out, lk_error *err);
+
 /* out: n x k floats. */
 void lk_pca_project(const lk_pca *pca, const float *x, size_t n, float *out);
 size_t lk_pca_input_dim(const lk_pca *pca);

@@ -15,6 +15,9 @@ typedef struct recipe {
     size_t pca_dim;         /* 0: no projection */
     int whiten;             /* divide each component by sqrt(its variance) */
     double whiten_floor;    /* variance floor, relative to the largest, before whitening */
+    size_t pca_max_images;  /* PCA is fitted on at most this many training images (seeded pick) */
+    int l2;                 /* L2-normalise the projected vector (needs pca_dim > 0) */
+    double wccn_reg;        /* within-class covariance normalisation; < 0 turns it off */
     size_t pairs_per_class; /* generated training pairs per class (0: only given pairs) */
     double C;
     lk_svm_loss loss;

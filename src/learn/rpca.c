@@ -158,10 +158,9 @@ static void orthonormalise(float *a, size_t m, size_t l, double *col, double *pr
     }
 }
 
-/* Cyclic Jacobi eigen-decomposition of the symmetric l x l matrix A (destroyed):
- * eigenvalues on A's diagonal, eigenvectors in the columns of V. Golub & Van
- * Loan, 4th ed., Algorithms 8.5.1 (symmetric Schur) and 8.5.3. */
-static void jacobi(double *a, double *v, size_t l)
+/* Cyclic Jacobi: Golub & Van Loan, 4th ed., Algorithms 8.5.1 (symmetric
+ * Schur) and 8.5.3. See learn.h. */
+void lk_symmetric_eigen(double *a, double *v, size_t l)
 {
     for (size_t i = 0; i < l; i++)
         for (size_t j = 0; j < l; j++)
@@ -268,7 +267,7 @@ lk_code lk_pca_fit_randomized(const float *x, size_t n, size_t d, const lk_rpca_
                 s += (double)omega[c * l + a] * omega[c * l + b];
             g[a * l + b] = g[b * l + a] = s;
         }
-    jacobi(g, u, l);
+    lk_symmetric_eigen(g, u, l);
     /* Eigenvalues (squared singular values) in descending order. */
     for (size_t a = 0; a < l; a++)
         order[a] = a;

@@ -101,6 +101,46 @@ def pca_case(tmp, name, X, T, k, whiten, threads, mode="pca", top=None):
     check(pd < 1e-4, f"{name}: projections (whiten={whiten}) max diff {pd:.2e} of their scale")
 
 
+def thumbnail_labels(n):
+    """Identity index of each of the first n images that lfw_thumbnails reads."""
+    root = os.path.join(LFW, "lfw-deepfunneled")
+    out = []
+    for c, nm in enumerate(sorted(os.listdir(root))):
+        out += [c] * len(os.listdir(os.path.join(root, nm)))
+        if len(out) >= n:
+            break
+    return np.array(out[:n], dtype=np.float64)
+
+
+def wccn_case(tmp, X, labels):
+    """WCCN (Hatch et al. 2006) against numpy: the within-class covariance over
+    identities with >= 2 images, and its symmetric inverse square root by
+    numpy.linalg.eigh, on 30-dim PCA projections of LFW thumbnails."""
+    p = lambda s: os.path.join(tmp, s)
+    Z = PCA(30, whiten=True, svd_solver="full").fit_transform(X)
+    Z = as_f32(Z)
+    wmat(p("Z.bin"), Z)
+    wmat(p("L.bin"), labels[None, :])
+    reg = 1e-3
+    subprocess.run([TOOL, "wccn", p("Z.bin"), p("L.bin"), str(reg), p("W.bin")], check=True)
+    W = rmat(p("W.bin"))
+    k = Z.shape[1]
+    sw = np.zeros((k, k))
+    used = 0
+    for c in np.unique(labels):
+        m = Z[labels == c]
+        if len(m) >= 2:
+            d = m - m.mean(0)
+            sw += d.T @ d
+            used += len(m)
+    sw /= used
+    lam, V = np.linalg.eigh(sw)
+    ref = (V / np.sqrt(np.maximum(lam, 0) + reg * lam.max())) @ V.T
+    rel = np.max(np.abs(W - ref)) / np.max(np.abs(ref))
+    check(rel < 1e-8, f"WCCN matrix vs numpy eigh, {used} images in classes of >= 2, "
+          f"max relative diff {rel:.2e}")
+
+
 def lfw_thumbnails(n):
     from skimage.io import imread
     from skimage.transform import resize
@@ -145,6 +185,7 @@ def main():
             pca_case(tmp, "cov LFW n=1200 d=1024", as_f32(th[:1200]), as_f32(th[1200:]), 50, 1, 2)
             pca_case(tmp, "randomized LFW n=1200 d=1024", as_f32(th[:1200]), as_f32(th[1200:]),
                      50, 1, 2, mode="rpca", top=20)
+            wccn_case(tmp, th[:1200], thumbnail_labels(1200))
         else:
             print("SKIPPED part: LFW images missing; the larger covariance fit was not checked",
                   file=sys.stderr)

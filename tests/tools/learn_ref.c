@@ -10,6 +10,7 @@
  *         roc_out: k x 3 (threshold, FMR, FNMR); summary_out: 1 x 16, see below
  *   pca   X k whiten threads Xtest comp_out var_out mean_out proj_out
  *   rpca  the same arguments, randomized PCA
+ *   wccn  Z labels reg out
  *   std   X Xtest params_out proj_out   params_out: 2 x d (mean, scale)
  *   pairs pairs_file lfw_root           prints "fold genuine path_a path_b"
  *                                       lines, or the error and exit 1 */
@@ -247,6 +248,30 @@ static int cmd_pca(char **a)
     return ok ? 0 : 1;
 }
 
+/* wccn Z labels reg out: Z (n x k), labels (1 x n, integral values). */
+static int cmd_wccn(char **a)
+{
+    mat Z, Lb;
+    if (!mat_read(a[0], &Z) || !mat_read(a[1], &Lb) || Lb.r * Lb.c != Z.r)
+        return 2;
+    float *z = to_float(&Z);
+    int *lab = malloc(((size_t)Z.r + 1) * sizeof *lab);
+    double *out = malloc(((size_t)(Z.c * Z.c) + 1) * sizeof *out);
+    for (int64_t i = 0; i < Z.r; i++)
+        lab[i] = (int)Lb.v[i];
+    lk_error err;
+    int ok = lk_wccn_fit(z, lab, (size_t)Z.r, (size_t)Z.c, atof(a[2]), out, &err) == LK_OK;
+    if (!ok)
+        fprintf(stderr, "wccn: %s\n", err.message);
+    ok = ok && mat_write(a[3], Z.c, Z.c, out);
+    free(z);
+    free(lab);
+    free(out);
+    free(Z.v);
+    free(Lb.v);
+    return ok ? 0 : 1;
+}
+
 /* Same arguments as pca, with lk_pca_fit_randomized. */
 static int cmd_rpca(char **a)
 {
@@ -304,7 +329,7 @@ int main(int argc, char **argv)
         int nargs;
         int (*fn)(char **);
     } cmds[] = {{"svm", 9, cmd_svm}, {"platt", 3, cmd_platt}, {"roc", 4, cmd_roc},
-                {"pca", 9, cmd_pca}, {"rpca", 9, cmd_rpca}, {"std", 4, cmd_std}, {"pairs", 2, cmd_pairs}};
+                {"pca", 9, cmd_pca}, {"rpca", 9, cmd_rpca}, {"wccn", 4, cmd_wccn}, {"std", 4, cmd_std}, {"pairs", 2, cmd_pairs}};
     for (size_t i = 0; argc >= 2 && i < sizeof cmds / sizeof cmds[0]; i++)
         if (strcmp(argv[1], cmds[i].name) == 0) {
             if (argc - 2 != cmds[i].nargs) {
@@ -314,6 +339,6 @@ int main(int argc, char **argv)
             }
             return cmds[i].fn(argv + 2);
         }
-    fprintf(stderr, "usage: lkt_learn_ref svm|platt|roc|pca|rpca|std|pairs ... (see the source's header)\n");
+    fprintf(stderr, "usage: lkt_learn_ref svm|platt|roc|pca|rpca|wccn|std|pairs ... (see the source's header)\n");
     return 2;
 }

@@ -104,6 +104,9 @@ static void test_transform(void)
     lk_error err;
     lk_align_params p;
     lk_align_params_default(&p);
+    /* Fixed crop geometry for this check, independent of the defaults. */
+    p.left_eye = (lk_point){32.0, 44.0};
+    p.right_eye = (lk_point){64.0, 44.0};
     lk_eyes e = {.left = {100.0, 120.0}, .right = {140.0, 150.0}, .found = 1};
     double m[6], inv[6];
     CHECK(lk_align_transform(&e, &p, m, &err) == LK_OK, "%s", err.message);
