@@ -4,6 +4,7 @@
  *
  * Scoring (docs/model-format.md, "Scoring"):
  *   y = W (x - mu)                  optional projection, W is k x d
+ *   y = y / ||y||_2                 optional, only with the projection
  *   p_i = (y_a,i - y_b,i)^2         pair vector (k, or d without projection)
  *   z_i = (p_i - m_i) / s_i         optional standardisation
  *   f = w . z + b                   linear SVM decision value
@@ -73,6 +74,19 @@ lk_code lk_model_set_features(lk_model *m, const char *config, size_t dim, lk_er
 lk_code lk_model_set_projection(lk_model *m, size_t k, size_t d, const double *mean,
                                 const double *matrix, lk_error *err);
 lk_code lk_model_clear_projection(lk_model *m);
+
+/* What happens to the projected vector y = W (x - mu) before the pair
+ * vector is formed (docs/model-format.md, section PRNM). */
+typedef enum lk_model_proj_norm {
+    LK_PROJ_NORM_NONE = 0, /* y as projected (no PRNM section in the file) */
+    LK_PROJ_NORM_L2 = 1    /* y / ||y||_2; a zero y stays zero */
+} lk_model_proj_norm;
+
+/* Sets the normalisation of the projected vector. LK_PROJ_NORM_L2 needs a
+ * projection (checked by lk_model_validate / lk_model_save, so the setters
+ * may be called in any order); lk_model_clear_projection also resets it to
+ * LK_PROJ_NORM_NONE. LK_ERR_INVALID_ARGUMENT for an unknown mode. */
+lk_code lk_model_set_projection_norm(lk_model *m, lk_model_proj_norm mode, lk_error *err);
 /* mean, scale: n values each, scale > 0. */
 lk_code lk_model_set_standardisation(lk_model *m, size_t n, const double *mean,
                                      const double *scale, lk_error *err);
@@ -113,6 +127,8 @@ size_t lk_model_pair_dim(const lk_model *m);
 /* false if the model has no projection (outputs untouched). */
 bool lk_model_projection(const lk_model *m, size_t *k, size_t *d, const double **mean,
                          const double **matrix);
+/* LK_PROJ_NORM_NONE if unset (or m is NULL). */
+lk_model_proj_norm lk_model_projection_norm(const lk_model *m);
 bool lk_model_standardisation(const lk_model *m, size_t *n, const double **mean,
                               const double **scale);
 bool lk_model_svm(const lk_model *m, size_t *n, const double **weights, double *bias);
@@ -130,12 +146,16 @@ lk_code lk_model_check_features(const lk_model *m, const char *config, size_t di
 /* Number of doubles of scratch that lk_model_pair_vector / lk_model_score need. */
 size_t lk_model_scratch_size(const lk_model *m);
 
-/* Projects one feature vector: out gets k values (d without projection). */
+/* Projects one feature vector: out gets k values (d without projection),
+ * L2-normalised if the model says so. With normalisation, a feature vector
+ * whose projection is not finite (NaN or infinite features) is refused with
+ * LK_ERR_INVALID_ARGUMENT. */
 lk_code lk_model_project(const lk_model *m, const float *feat, double *out, lk_error *err);
 
 /* The (standardised) pair vector z of two feature vectors of dimension d;
- * out gets lk_model_pair_dim() values. Needs the features (and projection /
- * standardisation, if any) set, not the SVM. */
+ * out gets lk_model_pair_dim() values; scratch holds lk_model_scratch_size()
+ * doubles. Needs the features (and projection / standardisation, if any)
+ * set, not the SVM. Errors as lk_model_project. */
 lk_code lk_model_pair_vector(const lk_model *m, const float *feat_a, const float *feat_b,
                              double *scratch, double *out, lk_error *err);
 
@@ -159,7 +179,8 @@ lk_code lk_model_threshold_for_fmr(const lk_model *m, double target_fmr, double 
                                    lk_error *err);
 
 /* Public description as a malloc'd JSON string (free with free()): id,
- * checksum, feature configuration and dimension, pair dimension, Platt
+ * checksum, feature configuration and dimension, projection, projection_norm
+ * ("none" or "l2"), standardisation, pair dimension, Platt
  * parameters, operating points, default FMR, provenance. Never the weights,
  * projection or standardisation. NULL if out of memory. */
 char *lk_model_to_json(const lk_model *m);

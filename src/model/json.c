@@ -25,6 +25,9 @@ char *lk_model_to_json(const lk_model *m)
     size_t k = 0;
     bool proj = lk_model_projection(m, &k, NULL, NULL, NULL);
     ok &= cJSON_AddBoolToObject(o, "projection", proj) != NULL;
+    ok &= cJSON_AddStringToObject(o, "projection_norm",
+                                  lk_model_projection_norm(m) == LK_PROJ_NORM_L2 ? "l2"
+                                                                                 : "none") != NULL;
     ok &= cJSON_AddBoolToObject(o, "standardisation",
                                 lk_model_standardisation(m, NULL, NULL, NULL)) != NULL;
     ok &= cJSON_AddNumberToObject(o, "pair_dimension", (double)lk_model_pair_dim(m)) != NULL;

@@ -30,6 +30,7 @@ struct lk_model {
     size_t proj_k, proj_d;
     double *proj_mean;   /* d */
     double *proj_matrix; /* k x d, row-major */
+    lk_model_proj_norm proj_norm;
 
     bool has_std;
     size_t std_n;
@@ -258,7 +259,9 @@ lk_code lk_model_set_projection(lk_model *m, size_t k, size_t d, const double *m
         free(wc);
         return lk_error_set(err, LK_ERR_NOMEM, "out of memory copying a %zu x %zu projection", k, d);
     }
+    lk_model_proj_norm norm = m->proj_norm; /* replacing W keeps the normalisation */
     lk_model_clear_projection(m);
+    m->proj_norm = norm;
     m->proj_mean = mc;
     m->proj_matrix = wc;
     m->proj_k = k;
@@ -276,6 +279,19 @@ lk_code lk_model_clear_projection(lk_model *m)
     m->proj_mean = m->proj_matrix = NULL;
     m->proj_k = m->proj_d = 0;
     m->has_proj = false;
+    m->proj_norm = LK_PROJ_NORM_NONE;
+    return LK_OK;
+}
+
+lk_code lk_model_set_projection_norm(lk_model *m, lk_model_proj_norm mode, lk_error *err)
+{
+    if (!m)
+        return lk_error_set(err, LK_ERR_INVALID_ARGUMENT, "no model");
+    if (mode != LK_PROJ_NORM_NONE && mode != LK_PROJ_NORM_L2)
+        return lk_error_set(err, LK_ERR_INVALID_ARGUMENT,
+                            "projection normalisation mode %d is unknown (use none or L2)",
+                            (int)mode);
+    m->proj_norm = mode;
     return LK_OK;
 }
 
@@ -488,6 +504,10 @@ static lk_code validate_pair_part(const lk_model *m, lk_error *err)
         return lk_error_set(err, LK_ERR_INVALID_ARGUMENT,
                             "projection input dimension %zu differs from the feature "
                             "dimension %zu", m->proj_d, m->dim);
+    if (m->proj_norm != LK_PROJ_NORM_NONE && !m->has_proj)
+        return lk_error_set(err, LK_ERR_INVALID_ARGUMENT,
+                            "projection normalisation is set but the model has no projection; "
+                            "set a projection or turn the normalisation off");
     size_t n = lk_model_pair_dim(m);
     if (m->has_std && m->std_n != n)
         return lk_error_set(err, LK_ERR_INVALID_ARGUMENT,
@@ -554,6 +574,11 @@ bool lk_model_projection(const lk_model *m, size_t *k, size_t *d, const double *
     if (matrix)
         *matrix = m->proj_matrix;
     return true;
+}
+
+lk_model_proj_norm lk_model_projection_norm(const lk_model *m)
+{
+    return m ? m->proj_norm : LK_PROJ_NORM_NONE;
 }
 
 bool lk_model_standardisation(const lk_model *m, size_t *n, const double **mean,
@@ -634,10 +659,64 @@ lk_code lk_model_check_features(const lk_model *m, const char *config, size_t di
 
 /* ---- scoring ---- */
 
+/* Room the pair vector needs before its output: the feature difference (d)
+ * without normalisation, the first projected vector (k) with it. The
+ * larger of the two whatever the mode, so that a scratch buffer sized
+ * before the normalisation was switched stays large enough. */
+static size_t pair_scratch(const lk_model *m)
+{
+    return m->has_proj && m->proj_k > m->dim ? m->proj_k : m->dim;
+}
+
 size_t lk_model_scratch_size(const lk_model *m)
 {
-    /* The feature difference (d) plus the pair vector (k or d). */
-    return m ? m->dim + lk_model_pair_dim(m) : 0;
+    /* lk_model_score puts the pair vector after the pair vector's scratch. */
+    return m ? pair_scratch(m) + lk_model_pair_dim(m) : 0;
+}
+
+/* y = W (x - mu), L2-normalised if the model says so; false if the
+ * normalisation meets a non-finite y. */
+static bool project_one(const lk_model *m, const float *feat, double *out)
+{
+    const size_t d = m->dim, k = m->proj_k;
+    for (size_t i = 0; i < k; i++) {
+        const double *row = m->proj_matrix + i * d;
+        double s = 0;
+        for (size_t j = 0; j < d; j++)
+            s += row[j] * ((double)feat[j] - m->proj_mean[j]);
+        out[i] = s;
+    }
+    if (m->proj_norm != LK_PROJ_NORM_L2)
+        return true;
+    /* ||y|| computed as amax * sqrt(sum (y_i / amax)^2) so the sum of
+     * squares can neither overflow nor underflow (the scaling of the
+     * reference BLAS dnrm2; common practice). */
+    double amax = 0;
+    for (size_t i = 0; i < k; i++) {
+        if (!isfinite(out[i]))
+            return false;
+        double a = fabs(out[i]);
+        if (a > amax)
+            amax = a;
+    }
+    if (amax == 0)
+        return true; /* x - mu in the null space of W: the zero vector stays zero */
+    double ss = 0;
+    for (size_t i = 0; i < k; i++) {
+        double t = out[i] / amax;
+        ss += t * t;
+    }
+    double root = sqrt(ss); /* in [1, sqrt(k)] */
+    for (size_t i = 0; i < k; i++)
+        out[i] = out[i] / amax / root;
+    return true;
+}
+
+static lk_code not_finite(lk_error *err)
+{
+    return lk_error_set(err, LK_ERR_INVALID_ARGUMENT,
+                        "the projected feature vector is not finite, so it cannot be "
+                        "normalised: a feature vector holds NaN or infinite values");
 }
 
 lk_code lk_model_project(const lk_model *m, const float *feat, double *out, lk_error *err)
@@ -653,14 +732,7 @@ lk_code lk_model_project(const lk_model *m, const float *feat, double *out, lk_e
             out[j] = feat[j];
         return LK_OK;
     }
-    for (size_t i = 0; i < m->proj_k; i++) {
-        const double *row = m->proj_matrix + i * d;
-        double s = 0;
-        for (size_t j = 0; j < d; j++)
-            s += row[j] * ((double)feat[j] - m->proj_mean[j]);
-        out[i] = s;
-    }
-    return LK_OK;
+    return project_one(m, feat, out) ? LK_OK : not_finite(err);
 }
 
 lk_code lk_model_pair_vector(const lk_model *m, const float *feat_a, const float *feat_b,
@@ -673,7 +745,17 @@ lk_code lk_model_pair_vector(const lk_model *m, const float *feat_a, const float
         return lk_error_set(err, LK_ERR_INVALID_ARGUMENT, "pair vector needs two feature "
                             "vectors, scratch and output");
     const size_t d = m->dim;
-    if (m->has_proj) {
+    if (m->has_proj && m->proj_norm == LK_PROJ_NORM_L2) {
+        /* The normalisation is not linear, so the mean no longer cancels:
+         * each vector is projected and normalised on its own. */
+        double *ya = scratch;
+        if (!project_one(m, feat_a, ya) || !project_one(m, feat_b, out))
+            return not_finite(err);
+        for (size_t i = 0; i < m->proj_k; i++) {
+            double t = ya[i] - out[i];
+            out[i] = t * t;
+        }
+    } else if (m->has_proj) {
         /* W(a - mu) - W(b - mu) = W(a - b): the mean cancels in exact
          * arithmetic, and projecting the difference once halves the work. */
         double *diff = scratch;
@@ -723,7 +805,7 @@ lk_code lk_model_score(const lk_model *m, const float *feat_a, const float *feat
     if (!scratch)
         return lk_error_set(err, LK_ERR_INVALID_ARGUMENT, "scoring needs scratch of "
                             "lk_model_scratch_size() doubles");
-    double *z = scratch + m->dim;
+    double *z = scratch + pair_scratch(m);
     c = lk_model_pair_vector(m, feat_a, feat_b, scratch, z, err);
     if (c)
         return c;
@@ -913,6 +995,11 @@ lk_code lk_model_serialise(const lk_model *m, uint8_t **bytes, size_t *len, lk_e
         w_u32(&w, (uint32_t)m->proj_d);
         w_f64s(&w, m->proj_mean, m->proj_d);
         w_f64s(&w, m->proj_matrix, m->proj_k * m->proj_d);
+        w_end(&w, at);
+    }
+    if (m->proj_norm != LK_PROJ_NORM_NONE) {
+        at = w_begin(&w, "PRNM");
+        w_u32(&w, (uint32_t)m->proj_norm);
         w_end(&w, at);
     }
     if (m->has_std) {
@@ -1164,6 +1251,30 @@ static lk_code parse_proj(lk_model *m, rd *r, size_t sec_at, lk_error *err)
     return c;
 }
 
+static lk_code parse_prnm(lk_model *m, rd *r, size_t sec_at, lk_error *err)
+{
+    size_t start = r->pos;
+    uint32_t mode;
+    lk_code c;
+    if ((c = rd_expect(r, 4, start, err)) || (c = rd_u32(r, "mode", &mode, err)))
+        return c;
+    /* The writer leaves the section out for "none", so mode 0 has one
+     * spelling only; modes above 1 come from a newer writer. */
+    if (mode == LK_PROJ_NORM_NONE)
+        return lk_error_set(err, LK_ERR_MODEL_FORMAT,
+                            "model file: PRNM.mode at offset %zu is 0 (none), which is written "
+                            "by leaving the section out (corrupt file)", start);
+    if (mode != LK_PROJ_NORM_L2)
+        return lk_error_set(err, LK_ERR_MODEL_FORMAT,
+                            "model file: PRNM.mode at offset %zu is %u, unknown to this likeness "
+                            LIKENESS_VERSION ": the model was written by a newer likeness; "
+                            "upgrade likeness to load it", start, (unsigned)mode);
+    lk_error e;
+    if (lk_model_set_projection_norm(m, (lk_model_proj_norm)mode, &e))
+        return setter_failed(r, sec_at, &e, err);
+    return LK_OK;
+}
+
 static lk_code parse_stdz(lk_model *m, rd *r, size_t sec_at, lk_error *err)
 {
     size_t start = r->pos, n;
@@ -1293,8 +1404,8 @@ static lk_code parse_prov(lk_model *m, rd *r, size_t sec_at, lk_error *err)
     return c;
 }
 
-static const char *const KNOWN_TAGS[] = {"IDNT", "FEAT", "PROJ", "STDZ",
-                                         "SVML", "PLAT", "OPPT", "PROV"};
+static const char *const KNOWN_TAGS[] = {"IDNT", "FEAT", "PROJ", "STDZ", "SVML",
+                                         "PLAT", "OPPT", "PROV", "PRNM"};
 #define N_KNOWN (sizeof KNOWN_TAGS / sizeof KNOWN_TAGS[0])
 
 /* Everything but the checksum, which lk_model_load_bytes has verified. */
@@ -1352,6 +1463,7 @@ static lk_code parse_sections(lk_model *m, const uint8_t *b, size_t csum_at, lk_
         case 5: c = parse_plat(m, &r, sec_at, err); break;
         case 6: c = parse_oppt(m, &r, sec_at, err); break;
         case 7: c = parse_prov(m, &r, sec_at, err); break;
+        case 8: c = parse_prnm(m, &r, sec_at, err); break;
         }
         if (c)
             return c;

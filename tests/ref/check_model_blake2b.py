@@ -6,11 +6,13 @@
 * The spec (docs/model-format.md): the file is read here by an independent
   reader written from the spec's byte layout with struct/numpy; its fields
   must agree with the C library's JSON, and the score of random feature
-  pairs computed by numpy from the documented formula must agree with
-  lk_model_score.
-* The other direction: a file written here from the spec (sections in
-  another order, plus an unknown optional section) must load in C and score
-  the same as numpy.
+  pairs computed by numpy from the documented formula (including the L2
+  normalisation of the projected vector, section PRNM) must agree with
+  lk_model_score, and the projected vectors with lk_model_project.
+* The other direction: files written here from the spec (sections in
+  another order, plus an unknown optional section, with and without PRNM)
+  must load in C and score the same as numpy; PRNM files the spec says to
+  refuse (mode 0, unknown mode, no PROJ) must be refused.
 """
 import hashlib
 import json
@@ -84,6 +86,13 @@ def parse(data):
         assert dd == d and len(p) == 8 + 8 * d + 8 * k * d
         m["mu"] = np.frombuffer(p, "<f8", d, 8)
         m["W"] = np.frombuffer(p, "<f8", k * d, 8 + 8 * d).reshape(k, d)
+    m["l2"] = False
+    if b"PRNM" in sec:
+        p = sec[b"PRNM"]
+        assert len(p) == 4 and b"PROJ" in sec
+        (mode,) = struct.unpack_from("<I", p, 0)
+        assert mode == 1, mode
+        m["l2"] = True
     if b"STDZ" in sec:
         p = sec[b"STDZ"]
         (n,) = struct.unpack_from("<I", p, 0)
@@ -112,14 +121,22 @@ def parse(data):
     return m
 
 
+def np_project(m, x):
+    """y = W (x - mu), then y / ||y||_2 if PRNM says so (a zero y stays zero)."""
+    x = x.astype(np.float64)
+    if "W" not in m:
+        return x
+    y = m["W"] @ (x - m["mu"])
+    if m["l2"]:
+        n = np.linalg.norm(y)
+        if n > 0:
+            y = y / n
+    return y
+
+
 def np_score(m, a, b):
     """docs/model-format.md "Scoring", literally (mean applied to each vector)."""
-    a = a.astype(np.float64)
-    b = b.astype(np.float64)
-    if "W" in m:
-        ya, yb = m["W"] @ (a - m["mu"]), m["W"] @ (b - m["mu"])
-    else:
-        ya, yb = a, b
+    ya, yb = np_project(m, a), np_project(m, b)
     z = (ya - yb) ** 2
     if "smean" in m:
         z = (z - m["smean"]) / m["sscale"]
@@ -147,6 +164,17 @@ def compare_scores(m, path, tmp, rng, tag):
     # The library projects a - b and numpy a - mu, b - mu: rounding only.
     check(ef < 1e-9 and ep < 1e-9, f"{tag}: score differs from numpy (f {ef}, p {ep})")
     check(want[:, 1].max() - want[:, 1].min() > 0.1, f"{tag}: probabilities do not spread")
+    # The projected vectors themselves (lk_model_project).
+    vp = os.path.join(tmp, "vecs.f32")
+    a[:20].tofile(vp)
+    got = np.array([list(map(float, line.split())) for line in run("project", path, vp).stdout.splitlines()])
+    want = np.array([np_project(m, x) for x in a[:20]])
+    ey = np.max(np.abs(got - want)) / max(1.0, np.max(np.abs(want)))
+    check(got.shape == want.shape and ey < 1e-12, f"{tag}: lk_model_project differs from numpy ({ey})")
+    if m["l2"]:
+        norms = np.linalg.norm(got, axis=1)
+        check(np.max(np.abs(norms - 1)) < 1e-14, f"{tag}: projected vectors not unit length {norms}")
+    return want
 
 
 def close(x, y):
@@ -171,6 +199,9 @@ def check_json(m, path, tag):
               (jr["impostor_comparisons"], jr["genuine_comparisons"], jr["supported"]) ==
               (r[5], r[6], bool(r[7] & 1)), f"{tag}: row {r}")
     check(j["provenance"] == m["prov"], f"{tag}: provenance {j['provenance']} vs {m['prov']}")
+    check(j["projection"] == ("W" in m), f"{tag}: projection flag")
+    check(j["projection_norm"] == ("l2" if m["l2"] else "none"),
+          f"{tag}: projection_norm {j['projection_norm']}")
     check("weights" not in json.dumps(j), f"{tag}: JSON must not hold weights")
 
 
@@ -185,13 +216,20 @@ def pstr(s):
     return struct.pack("<I", len(b)) + b
 
 
-def write_model(rng, d, k):
+def write_model(rng, d, k, prnm=None, proj=True):
+    """prnm: None (no PRNM section) or (flags, mode). proj=False leaves PROJ
+    out (SVM and STDZ then have k = d)."""
+    if not proj:
+        k = d
     mu = rng.standard_normal(d)
     W = rng.standard_normal((k, d)) / np.sqrt(d)
     sm = rng.random(k)
     ss = 0.5 + rng.random(k)
     w = -np.abs(rng.standard_normal(k)) / np.sqrt(k)
     bias, A, B = 2.0, -1.3, 0.2
+    if prnm is not None:
+        # Unit vectors: pair values about 4/k, so rescale to keep scores spread.
+        sm, ss = sm / k, ss / k
     rows = [(1e-4, 0.95, 1.2, 1.5e-4, 0.4, 50000, 900, 0),
             (1e-3, 0.7, 0.4, 0.9e-3, 0.2, 50000, 900, 1)]
     prov = {"dataset": "written by numpy", "training_pairs": 11, "calibration_pairs": 22,
@@ -207,11 +245,18 @@ def write_model(rng, d, k):
         section(b"ZZZZ", b"future optional data", flags=0),
         section(b"SVML", struct.pack("<Id", k, bias) + w.astype("<f8").tobytes()),
         section(b"STDZ", struct.pack("<I", k) + sm.astype("<f8").tobytes() + ss.astype("<f8").tobytes()),
-        section(b"PROJ", struct.pack("<II", k, d) + mu.astype("<f8").tobytes() + W.astype("<f8").tobytes()),
+    ]
+    if proj:
+        secs.append(section(b"PROJ", struct.pack("<II", k, d) + mu.astype("<f8").tobytes() +
+                            W.astype("<f8").tobytes()))
+    secs += [
         section(b"PLAT", struct.pack("<dd", A, B)),
         section(b"FEAT", struct.pack("<I", d) + pstr(config)),
         section(b"IDNT", bytes(range(16))),
     ]
+    if prnm is not None:
+        # Before PROJ's position in the C writer's order: the order must not matter.
+        secs.insert(1, section(b"PRNM", struct.pack("<I", prnm[1]), flags=prnm[0]))
     body = b"LKMODEL\0" + struct.pack("<I", 1) + b"".join(secs)
     body += b"CSUM" + struct.pack("<IQ", 1, 32)
     data = body + hashlib.blake2b(body, digest_size=32).digest()
@@ -221,17 +266,19 @@ def write_model(rng, d, k):
 def main():
     rng = np.random.default_rng(20261202)
     with tempfile.TemporaryDirectory() as tmp:
-        cases = [("projection+standardisation", 64, 20, 1), ("projection", 48, 10, 0),
-                 ("no projection", 30, 0, 1)]
-        for seed, (tag, d, k, stdz) in enumerate(cases, start=5):
+        cases = [("projection+standardisation", 64, 20, 1, 0), ("projection", 48, 10, 0, 0),
+                 ("no projection", 30, 0, 1, 0), ("projection+L2+standardisation", 64, 20, 1, 1),
+                 ("projection+L2", 20, 32, 0, 1)]
+        for seed, (tag, d, k, stdz, l2) in enumerate(cases, start=5):
             path = os.path.join(tmp, f"m{seed}.lkmodel")
-            run("make", path, str(seed), str(d), str(k), str(stdz))
+            run("make", path, str(seed), str(d), str(k), str(stdz), str(l2))
             data = open(path, "rb").read()
             m = parse(data)
             # RFC 7693 BLAKE2b-256 via hashlib, over every byte before the digest.
             ref = hashlib.blake2b(data[:m["digest_at"]], digest_size=32).digest()
             check(ref == m["checksum"], f"{tag}: stored checksum differs from hashlib.blake2b")
-            check(("W" in m) == (k > 0) and ("smean" in m) == bool(stdz), f"{tag}: optional sections")
+            check(("W" in m) == (k > 0) and ("smean" in m) == bool(stdz) and m["l2"] == bool(l2),
+                  f"{tag}: optional sections")
             check_json(m, path, tag)
             compare_scores(m, path, tmp, rng, tag)
             # One changed byte in a weight: refused as model_format.
@@ -251,6 +298,35 @@ def main():
         check(m["id"] == bytes(range(16)).hex(), "numpy file id")
         check_json(m, path, "numpy-written")
         compare_scores(m, path, tmp, rng, "numpy-written")
+
+        # The same model with PRNM (REQUIRED and not) written here: C must
+        # normalise exactly as numpy does.
+        for flags in (1, 0):
+            rng2 = np.random.default_rng(7)
+            data = write_model(rng2, 40, 12, prnm=(flags, 1))
+            path = os.path.join(tmp, f"numpy-l2-{flags}.lkmodel")
+            open(path, "wb").write(data)
+            m = parse(data)
+            check(m["l2"], "numpy PRNM parsed")
+            check_json(m, path, f"numpy-written L2 flags={flags}")
+            compare_scores(m, path, tmp, rng, f"numpy-written L2 flags={flags}")
+        # Files the spec says to refuse.
+        refusals = [("PRNM mode 0", dict(prnm=(1, 0)), "PRNM.mode"),
+                    ("PRNM mode 2", dict(prnm=(1, 2)), "upgrade"),
+                    ("PRNM without PROJ", dict(prnm=(1, 1), proj=False), "no projection")]
+        for tag, kw, needle in refusals:
+            data = write_model(np.random.default_rng(8), 40, 12, **kw)
+            path = os.path.join(tmp, "refused.lkmodel")
+            open(path, "wb").write(data)
+            r = run("json", path, ok=False)
+            check(r.returncode == 2 and r.stderr.startswith("model_format:") and needle in r.stderr,
+                  f"{tag}: not refused as expected: {r.returncode} {r.stderr}")
+            print(f"{tag}: refused: {r.stderr.strip()}")
+        # Without PRNM the PROJ-less numpy file is fine (the refusal above is PRNM's).
+        data = write_model(np.random.default_rng(8), 40, 12, proj=False)
+        path = os.path.join(tmp, "noproj.lkmodel")
+        open(path, "wb").write(data)
+        compare_scores(parse(data), path, tmp, rng, "numpy-written no projection")
 
     if failures:
         print(f"{failures} checks failed", file=sys.stderr)

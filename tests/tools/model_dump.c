@@ -1,8 +1,10 @@
 /* Drives the model module for tests/ref/check_model_blake2b.py:
- *   lkt_model_dump make <out> <seed> <d> <k> <stdz>   random model (k = 0: no projection)
+ *   lkt_model_dump make <out> <seed> <d> <k> <stdz> [l2]   random model (k = 0: no
+ *       projection; l2 = 1: L2 normalisation of the projected vector)
  *   lkt_model_dump json <model>                       lk_model_to_json
  *   lkt_model_dump score <model> <pairs.f32>          one "svm probability" line per pair;
  *       the file holds float32 little-endian vectors a0 b0 a1 b1 ... of dimension d
+ *   lkt_model_dump project <model> <vecs.f32>        lk_model_project, one line per vector
  * Errors go to stderr as "<code name>: <message>", exit status 2. */
 #include "likeness/model.h"
 
@@ -27,7 +29,7 @@ static double rnd(uint64_t *s)
     return (double)(z >> 11) * 0x1.0p-52 - 1.0;
 }
 
-static int make(const char *out, uint64_t seed, size_t d, size_t k, int stdz)
+static int make(const char *out, uint64_t seed, size_t d, size_t k, int stdz, int l2)
 {
     lk_error e;
     lk_model *m = lk_model_new();
@@ -45,6 +47,13 @@ static int make(const char *out, uint64_t seed, size_t d, size_t k, int stdz)
         ss[i] = 0.75 + 0.5 * rnd(&seed);
         sv[i] = -fabs(rnd(&seed)) / sqrt((double)n); /* far apart = impostor */
     }
+    if (l2) /* unit vectors: pair values about 4/k, so rescale to keep scores spread */
+        for (size_t i = 0; i < n; i++) {
+            sm[i] /= (double)n;
+            ss[i] /= (double)n;
+            if (!stdz)
+                sv[i] *= (double)n;
+        }
     const lk_model_operating_point rows[2] = {
         {1e-3, 0.8, 0.9, 1e-3, 0.2, 100000, 2000, true},
         {1e-2, 0.5, 0.1, 1.2e-2, 0.08, 100000, 2000, false},
@@ -54,6 +63,8 @@ static int make(const char *out, uint64_t seed, size_t d, size_t k, int stdz)
     lk_code c = lk_model_set_features(m, "crop=96x112;hog=cell8,bins9", d, &e);
     if (!c && k)
         c = lk_model_set_projection(m, k, d, mean, w, &e);
+    if (!c && l2)
+        c = lk_model_set_projection_norm(m, LK_PROJ_NORM_L2, &e);
     if (!c && stdz)
         c = lk_model_set_standardisation(m, n, sm, ss, &e);
     if (!c)
@@ -114,11 +125,44 @@ static int score(const char *model, const char *pairs)
     return rc;
 }
 
+static int project(const char *model, const char *vecs)
+{
+    lk_error e;
+    lk_model *m = lk_model_load(model, &e);
+    if (!m)
+        return fail(&e);
+    size_t d = lk_model_feature_dim(m), k = lk_model_pair_dim(m);
+    FILE *f = fopen(vecs, "rb");
+    if (!f) {
+        perror(vecs);
+        lk_model_free(m);
+        return 2;
+    }
+    float *x = malloc(d * sizeof *x);
+    double *y = malloc(k * sizeof *y);
+    int rc = 0;
+    while (fread(x, sizeof *x, d, f) == d) {
+        if (lk_model_project(m, x, y, &e)) {
+            rc = fail(&e);
+            break;
+        }
+        for (size_t i = 0; i < k; i++)
+            printf("%.17g%c", y[i], i + 1 < k ? ' ' : '\n');
+    }
+    fclose(f);
+    free(x);
+    free(y);
+    lk_model_free(m);
+    return rc;
+}
+
 int main(int argc, char **argv)
 {
-    if (argc == 7 && strcmp(argv[1], "make") == 0)
+    if ((argc == 7 || argc == 8) && strcmp(argv[1], "make") == 0)
         return make(argv[2], strtoull(argv[3], NULL, 10), strtoul(argv[4], NULL, 10),
-                    strtoul(argv[5], NULL, 10), atoi(argv[6]));
+                    strtoul(argv[5], NULL, 10), atoi(argv[6]), argc == 8 ? atoi(argv[7]) : 0);
+    if (argc == 4 && strcmp(argv[1], "project") == 0)
+        return project(argv[2], argv[3]);
     if (argc == 3 && strcmp(argv[1], "json") == 0) {
         lk_error e;
         lk_model *m = lk_model_load(argv[2], &e);
@@ -134,7 +178,7 @@ int main(int argc, char **argv)
     }
     if (argc == 4 && strcmp(argv[1], "score") == 0)
         return score(argv[2], argv[3]);
-    fprintf(stderr, "usage: %s make <out> <seed> <d> <k> <stdz> | json <model> | score <model> "
-                    "<pairs.f32>\n", argv[0]);
+    fprintf(stderr, "usage: %s make <out> <seed> <d> <k> <stdz> [l2] | json <model> | score "
+                    "<model> <pairs.f32> | project <model> <vecs.f32>\n", argv[0]);
     return 2;
 }

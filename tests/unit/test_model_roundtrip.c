@@ -4,8 +4,11 @@
  * mean kept in, in long double); every truncation and every single-byte
  * change of a file is refused with LK_ERR_MODEL_FORMAT and never crashes
  * (ASan/UBSan and valgrind watch for the crash part); crafted files with a
- * valid checksum exercise the field checks. The checksum itself is checked
- * against Python's hashlib in tests/ref/check_model_blake2b.py. */
+ * valid checksum exercise the field checks, including the PRNM section
+ * (L2 normalisation of the projected vector: modes, REQUIRED flag, PRNM
+ * without PROJ, zero and overflowing projections, non-finite input). The
+ * checksum itself is checked against Python's hashlib in
+ * tests/ref/check_model_blake2b.py. */
 #include "likeness/model.h"
 #include "lk_test.h"
 
@@ -38,7 +41,7 @@ static const lk_model_operating_point ROWS[3] = {
     {1e-2, 0.60, 0.25, 0.95e-2, 0.05, 200000, 3000, true},
 };
 
-static lk_model *build(size_t d, size_t k, bool proj, bool stdz, uint64_t seed)
+static lk_model *build(size_t d, size_t k, bool proj, bool stdz, bool l2, uint64_t seed)
 {
     uint64_t s = seed;
     lk_error e;
@@ -59,6 +62,8 @@ static lk_model *build(size_t d, size_t k, bool proj, bool stdz, uint64_t seed)
     }
     int bad = 0;
     bad |= lk_model_set_features(m, "crop=96x112;hog=cell8,bins9;lbp=u2", d, &e);
+    if (l2) /* before the projection on purpose: the setters' order must not matter */
+        bad |= lk_model_set_projection_norm(m, LK_PROJ_NORM_L2, &e);
     if (proj)
         bad |= lk_model_set_projection(m, k, d, mean, w, &e);
     if (stdz)
@@ -98,6 +103,7 @@ static void check_equal(const lk_model *a, const lk_model *b, const char *what)
     bool pa = lk_model_projection(a, &ka, &da, &ma, &wa);
     bool pb = lk_model_projection(b, &kb, &db, &mb, &wb);
     CHECK(pa == pb && ka == kb && da == db, "%s: projection shape", what);
+    CHECK(lk_model_projection_norm(a) == lk_model_projection_norm(b), "%s: projection norm", what);
     if (pa && pb && ka == kb && da == db)
         CHECK(same_doubles(ma, mb, da) && same_doubles(wa, wb, ka * da), "%s: projection", what);
     size_t na = 0, nb = 0;
@@ -135,35 +141,59 @@ static void check_equal(const lk_model *a, const lk_model *b, const char *what)
           "%s: provenance", what);
 }
 
+/* y = W (x - mu) of docs/model-format.md "Scoring" in long double, then
+ * y / ||y||_2 when PRNM says so (a zero y stays zero). */
+static void direct_project(const lk_model *m, const float *x, long double *y)
+{
+    size_t d = lk_model_feature_dim(m), k = d;
+    const double *mu = NULL, *W = NULL;
+    if (!lk_model_projection(m, &k, NULL, &mu, &W)) {
+        for (size_t j = 0; j < d; j++)
+            y[j] = x[j];
+        return;
+    }
+    long double amax = 0, ss = 0;
+    for (size_t i = 0; i < k; i++) {
+        long double t = 0;
+        for (size_t j = 0; j < d; j++)
+            t += (long double)W[i * d + j] * ((long double)x[j] - mu[j]);
+        y[i] = t;
+        amax = fabsl(t) > amax ? fabsl(t) : amax;
+    }
+    /* Divided by the largest |y_i| first: valgrind runs long double as
+     * binary64, where the squares of the huge test vector would overflow. */
+    for (size_t i = 0; i < k && amax > 0; i++)
+        ss += (y[i] / amax) * (y[i] / amax);
+    if (lk_model_projection_norm(m) == LK_PROJ_NORM_L2 && ss > 0)
+        for (size_t i = 0; i < k; i++)
+            y[i] /= amax * sqrtl(ss);
+}
+
 /* The formula of docs/model-format.md "Scoring", step by step, with the
- * projection mean applied to each vector as written (the library cancels it). */
+ * projection mean applied to each vector as written (the library cancels it
+ * when there is no normalisation). */
 static void direct_score(const lk_model *m, const float *a, const float *b, long double *f,
                          long double *p)
 {
-    size_t d = lk_model_feature_dim(m), k = d, n;
-    const double *mu = NULL, *W = NULL, *sm = NULL, *ss = NULL, *w;
-    bool proj = lk_model_projection(m, &k, NULL, &mu, &W);
+    size_t n;
+    const double *sm = NULL, *ss = NULL, *w;
     bool stdz = lk_model_standardisation(m, &n, &sm, &ss);
     double bias, A, B;
     lk_model_svm(m, &n, &w, &bias);
     lk_model_platt(m, &A, &B);
+    size_t k = lk_model_pair_dim(m), big = k > lk_model_feature_dim(m) ? k : lk_model_feature_dim(m);
+    long double *ya = malloc(big * sizeof *ya), *yb = malloc(big * sizeof *yb);
+    direct_project(m, a, ya);
+    direct_project(m, b, yb);
     long double acc = bias;
     for (size_t i = 0; i < k; i++) {
-        long double ya = 0, yb = 0;
-        if (proj) {
-            for (size_t j = 0; j < d; j++) {
-                ya += (long double)W[i * d + j] * ((long double)a[j] - mu[j]);
-                yb += (long double)W[i * d + j] * ((long double)b[j] - mu[j]);
-            }
-        } else {
-            ya = a[i];
-            yb = b[i];
-        }
-        long double z = (ya - yb) * (ya - yb);
+        long double z = (ya[i] - yb[i]) * (ya[i] - yb[i]);
         if (stdz)
             z = (z - sm[i]) / ss[i];
         acc += w[i] * z;
     }
+    free(ya);
+    free(yb);
     *f = acc;
     *p = 1.0L / (1.0L + expl(A * acc + B));
 }
@@ -507,15 +537,160 @@ static void api_checks(lk_model *m)
     free(js);
 }
 
+/* Inserts a PRNM section (flags, mode) before CSUM and reseals; returns the new length. */
+static size_t with_prnm(const uint8_t *good, size_t len, uint8_t *b, uint32_t flags, uint32_t mode)
+{
+    size_t cs = len - 48;
+    memcpy(b, good, cs);
+    memcpy(b + cs, "PRNM", 4);
+    put32(b + cs + 4, flags);
+    put64(b + cs + 8, 4);
+    put32(b + cs + 16, mode);
+    memcpy(b + cs + 20, good + cs, 48);
+    reseal(b, len + 20);
+    return len + 20;
+}
+
+/* The PRNM section and the normalisation step (docs/model-format.md).
+ * good_l2: a file written with the normalisation on; good_proj: one with a
+ * projection and no normalisation; good_raw: one without a projection. */
+static void prnm_checks(const uint8_t *good_l2, size_t len_l2, const uint8_t *good_proj,
+                        size_t len_proj, const uint8_t *good_raw, size_t len_raw)
+{
+    lk_error e;
+    size_t big = len_l2 > len_proj ? len_l2 : len_proj;
+    big = big > len_raw ? big : len_raw;
+    uint8_t *b = malloc(big + 64);
+
+    /* As written: REQUIRED set, length 4, mode 1. */
+    size_t at = find_section(good_l2, len_l2, "PRNM");
+    CHECK(at > 0 && good_l2[at + 4] == 1 && good_l2[at + 8] == 4 && good_l2[at + 16] == 1 &&
+              good_l2[at + 17] == 0 && good_l2[at + 18] == 0 && good_l2[at + 19] == 0,
+          "PRNM written REQUIRED with length 4 and mode 1");
+    CHECK(find_section(good_proj, len_proj, "PRNM") == 0, "no PRNM without normalisation");
+
+    /* Mode 0 is spelled by leaving the section out; mode 2 is from a newer writer. */
+    memcpy(b, good_l2, len_l2);
+    put32(b + at + 16, 0);
+    reseal(b, len_l2);
+    CHECK(load_code(b, len_l2, &e) == LK_ERR_MODEL_FORMAT && strstr(e.message, "PRNM.mode"),
+          "mode 0 refused: %s", e.message);
+    put32(b + at + 16, 2);
+    reseal(b, len_l2);
+    CHECK(load_code(b, len_l2, &e) == LK_ERR_MODEL_FORMAT && strstr(e.message, "upgrade"),
+          "mode 2 refused: %s", e.message);
+    /* Removing the section by renaming it to an unknown REQUIRED tag: refused. */
+    memcpy(b, good_l2, len_l2);
+    memcpy(b + at, "PRNX", 4);
+    reseal(b, len_l2);
+    CHECK(load_code(b, len_l2, &e) == LK_ERR_MODEL_FORMAT && strstr(e.message, "upgrade"),
+          "unknown required tag refused: %s", e.message);
+
+    /* PRNM without PROJ: refused. */
+    size_t l = with_prnm(good_raw, len_raw, b, 1, 1);
+    CHECK(load_code(b, l, &e) == LK_ERR_MODEL_FORMAT && strstr(e.message, "no projection"),
+          "PRNM without PROJ refused: %s", e.message);
+    /* PRNM (either flag value) added after PROJ to a plain projection model:
+     * loads with the normalisation on and scores by the formula. */
+    for (uint32_t flags = 0; flags <= 1; flags++) {
+        l = with_prnm(good_proj, len_proj, b, flags, 1);
+        lk_model *m = lk_model_load_bytes(b, l, &e);
+        CHECK(m != NULL && lk_model_projection_norm(m) == LK_PROJ_NORM_L2,
+              "PRNM after PROJ, flags %u: %s", (unsigned)flags, m ? "" : e.message);
+        if (m)
+            scoring(m, 555);
+        lk_model_free(m);
+    }
+    free(b);
+}
+
+/* A zero projected vector stays zero; a huge one is normalised without
+ * overflow; a non-finite one is refused. Values are exact in float and
+ * double so that x = mu gives y = 0 exactly. */
+static void zero_and_huge(void)
+{
+    static const double mu[3] = {0.5, -0.25, 2.0};
+    double W[2 * 3] = {1, 2, -1, 0.5, 0, 3};
+    lk_error e;
+    lk_model *m = build(3, 2, true, false, true, 4242);
+    CHECK(m && lk_model_set_projection(m, 2, 3, mu, W, &e) == LK_OK, "small model: %s", e.message);
+    if (!m)
+        return;
+    double *scratch = malloc(lk_model_scratch_size(m) * sizeof *scratch);
+    double y[2] = {-1, -1}, f, p;
+    const float at_mean[3] = {0.5f, -0.25f, 2.0f}, other[3] = {1.5f, 0.75f, -1.0f};
+    CHECK(lk_model_project(m, at_mean, y, &e) == LK_OK && y[0] == 0 && y[1] == 0,
+          "x = mu projects to the zero vector (%g %g)", y[0], y[1]);
+    CHECK(lk_model_project(m, other, y, &e) == LK_OK &&
+              fabs(hypot(y[0], y[1]) - 1) < 1e-15,
+          "unit norm after normalisation: %.17g", hypot(y[0], y[1]));
+    /* other - mu = (1, 1, -3): y = (1 + 2 + 3, 0.5 - 9) = (6, -8.5), norm
+     * sqrt(36 + 72.25) by hand from the formula. */
+    CHECK(fabs(y[0] - 6 / sqrt(108.25)) < 1e-15 && fabs(y[1] + 8.5 / sqrt(108.25)) < 1e-15,
+          "normalised values (%.17g, %.17g)", y[0], y[1]);
+    long double df, dp;
+    CHECK(lk_model_score(m, at_mean, other, scratch, &f, &p, &e) == LK_OK, "score with zero y: %s",
+          e.message);
+    direct_score(m, at_mean, other, &df, &dp);
+    CHECK(fabs((double)(f - df)) < 1e-12 * (1 + fabs((double)df)), "zero y scores by the formula");
+    /* |y| about 1e218: sum of squares would overflow binary64. */
+    for (size_t i = 0; i < 6; i++)
+        W[i] *= 1e180;
+    CHECK(lk_model_set_projection(m, 2, 3, mu, W, &e) == LK_OK, "huge W: %s", e.message);
+    const float huge[3] = {1e38f, 1e37f, -1e38f};
+    CHECK(lk_model_project(m, huge, y, &e) == LK_OK && isfinite(y[0]) && isfinite(y[1]) &&
+              fabs(hypot(y[0], y[1]) - 1) < 1e-15,
+          "huge y normalised without overflow (%g %g)", y[0], y[1]);
+    CHECK(lk_model_score(m, huge, other, scratch, &f, &p, &e) == LK_OK, "huge score: %s", e.message);
+    direct_score(m, huge, other, &df, &dp);
+    CHECK(fabs((double)(f - df)) < 1e-12 * (1 + fabs((double)df)), "huge y scores by the formula");
+    const float bad[3] = {NAN, 0, 0};
+    CHECK(lk_model_project(m, bad, y, &e) == LK_ERR_INVALID_ARGUMENT, "NaN refused by project");
+    CHECK(lk_model_pair_vector(m, bad, other, scratch, y, &e) == LK_ERR_INVALID_ARGUMENT,
+          "NaN refused by pair vector");
+    /* API: unknown mode, normalisation without projection, clear resets it. */
+    CHECK(lk_model_set_projection_norm(m, (lk_model_proj_norm)7, &e) == LK_ERR_INVALID_ARGUMENT,
+          "unknown mode refused");
+    CHECK(lk_model_projection_norm(m) == LK_PROJ_NORM_L2, "mode unchanged by a refused call");
+    char *js = lk_model_to_json(m);
+    CHECK(js && strstr(js, "\"projection_norm\":\"l2\""), "json projection_norm l2");
+    free(js);
+    lk_model_clear_projection(m);
+    CHECK(lk_model_projection_norm(m) == LK_PROJ_NORM_NONE, "clear_projection resets the norm");
+    CHECK(lk_model_set_projection_norm(m, LK_PROJ_NORM_L2, &e) == LK_OK, "set again");
+    uint8_t *bytes = NULL;
+    size_t len = 0;
+    CHECK(lk_model_validate(m, &e) == LK_ERR_INVALID_ARGUMENT && strstr(e.message, "no projection"),
+          "L2 without projection invalid: %s", e.message);
+    CHECK(lk_model_serialise(m, &bytes, &len, &e) == LK_ERR_INVALID_ARGUMENT,
+          "L2 without projection not written");
+    free(bytes);
+    /* (The SVM still has k = 2 weights for d = 3, so only the complaint changes.) */
+    CHECK(lk_model_set_projection_norm(m, LK_PROJ_NORM_NONE, &e) == LK_OK &&
+              lk_model_validate(m, &e) != LK_OK && !strstr(e.message, "normalisation") &&
+              strstr(e.message, "SVM dimension"),
+          "none without projection: only the dimension complaint left: %s", e.message);
+    js = lk_model_to_json(m);
+    CHECK(js && strstr(js, "\"projection_norm\":\"none\""), "json projection_norm none");
+    free(js);
+    free(scratch);
+    lk_model_free(m);
+}
+
 int main(void)
 {
     if (sodium_init() < 0)
         LK_SKIP("libsodium could not initialise");
-    static const struct { size_t d, k; bool proj, stdz; } cases[] = {
-        {40, 12, true, true}, {40, 12, true, false}, {24, 0, false, true}, {24, 0, false, false}};
+    /* Case 0 (normalisation on) gets the robustness sweeps; case 4 has k > d
+     * so the normalisation's scratch (k) is larger than the difference's (d). */
+    static const struct { size_t d, k; bool proj, stdz, l2; } cases[] = {
+        {40, 12, true, true, true},   {40, 12, true, true, false}, {24, 0, false, true, false},
+        {24, 0, false, false, false}, {10, 16, true, true, true},  {40, 12, true, false, true}};
+    uint8_t *kept[3] = {NULL, NULL, NULL};
+    size_t kept_len[3] = {0, 0, 0};
     for (size_t ci = 0; ci < sizeof cases / sizeof cases[0]; ci++) {
         lk_model *m = build(cases[ci].d, cases[ci].k ? cases[ci].k : 1, cases[ci].proj,
-                            cases[ci].stdz, 1000 + ci);
+                            cases[ci].stdz, cases[ci].l2, 1000 + ci);
         CHECK(m != NULL, "build case %zu", ci);
         if (!m)
             continue;
@@ -536,6 +711,13 @@ int main(void)
             free(again);
             CHECK(strlen(lk_model_checksum(l)) == 64, "checksum hex");
             scoring(l, 77 + ci);
+        }
+        if (ci == 1)
+            robustness(bytes, len); /* the same sweeps without PRNM */
+        if (ci <= 2) {
+            kept[ci] = bytes;
+            kept_len[ci] = len;
+            bytes = NULL;
         }
         if (ci == 0) {
             char dir[] = "/tmp/lk_model_test_XXXXXX";
@@ -561,8 +743,8 @@ int main(void)
             unlink(path);
             rmdir(dir);
             CHECK(lk_model_load(path, &e) == NULL && e.code == LK_ERR_IO, "missing file: io");
-            robustness(bytes, len);
-            crafted(bytes, len);
+            robustness(kept[0], kept_len[0]);
+            crafted(kept[0], kept_len[0]);
             api_checks(m);
             threads(m);
         }
@@ -570,6 +752,11 @@ int main(void)
         free(bytes);
         lk_model_free(m);
     }
+    if (kept[0] && kept[1] && kept[2])
+        prnm_checks(kept[0], kept_len[0], kept[1], kept_len[1], kept[2], kept_len[2]);
+    for (int i = 0; i < 3; i++)
+        free(kept[i]);
+    zero_and_huge();
     lk_model *empty = lk_model_new();
     lk_error e;
     CHECK(lk_model_save(empty, "/tmp/never-written.lkmodel", &e) == LK_ERR_INVALID_ARGUMENT,
