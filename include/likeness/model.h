@@ -70,10 +70,34 @@ void lk_model_free(lk_model *m);
  * errors are LK_ERR_INVALID_ARGUMENT or LK_ERR_NOMEM. Dimensions across
  * setters are checked together by lk_model_validate / lk_model_save. */
 lk_code lk_model_set_features(lk_model *m, const char *config, size_t dim, lk_error *err);
-/* mean: d values; matrix: k x d, row-major. */
+/* How the projection matrix W is stored in the file (docs/model-format.md,
+ * section PROJ, field encoding; the enum values are the field's codes). */
+typedef enum lk_model_proj_encoding {
+    LK_MODEL_F64 = 1, /* IEEE binary64: exact */
+    LK_MODEL_F32 = 2  /* IEEE binary32 (the default): half the size, W rounded
+                         to nearest, relative error <= 2^-24 per element */
+} lk_model_proj_encoding;
+
+/* mean: d values; matrix: k x d, row-major. With the F32 encoding (the
+ * default) the matrix is rounded to binary32 as it is copied, so the model
+ * scores in memory exactly as it will after a save and load, and the getter
+ * returns the rounded values; every |W_ij| must then be <= FLT_MAX. The mean
+ * is always kept in binary64. */
 lk_code lk_model_set_projection(lk_model *m, size_t k, size_t d, const double *mean,
                                 const double *matrix, lk_error *err);
 lk_code lk_model_clear_projection(lk_model *m);
+/* Chooses the encoding of W; may be called before or after
+ * lk_model_set_projection. Switching to F32 rounds a projection already set
+ * (refused with LK_ERR_INVALID_ARGUMENT, model unchanged, if some |W_ij| >
+ * FLT_MAX); switching to F64 keeps the values as they are, so to keep a
+ * matrix at full binary64 precision choose F64 before setting it.
+ * LK_ERR_INVALID_ARGUMENT for an unknown encoding. Kept by
+ * lk_model_clear_projection. */
+lk_code lk_model_set_projection_encoding(lk_model *m, lk_model_proj_encoding enc,
+                                         lk_error *err);
+/* LK_MODEL_F32 for a new model (or m NULL); a loaded model reports the
+ * encoding of its file's PROJ section (F32 if it has none). */
+lk_model_proj_encoding lk_model_projection_encoding(const lk_model *m);
 
 /* What happens to the projected vector y = W (x - mu) before the pair
  * vector is formed (docs/model-format.md, section PRNM). */
@@ -180,7 +204,8 @@ lk_code lk_model_threshold_for_fmr(const lk_model *m, double target_fmr, double 
 
 /* Public description as a malloc'd JSON string (free with free()): id,
  * checksum, feature configuration and dimension, projection, projection_norm
- * ("none" or "l2"), standardisation, pair dimension, Platt
+ * ("none" or "l2"), projection_encoding ("f32" or "f64"; only with a projection),
+ * standardisation, pair dimension, Platt
  * parameters, operating points, default FMR, provenance. Never the weights,
  * projection or standardisation. NULL if out of memory. */
 char *lk_model_to_json(const lk_model *m);

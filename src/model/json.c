@@ -25,6 +25,11 @@ char *lk_model_to_json(const lk_model *m)
     size_t k = 0;
     bool proj = lk_model_projection(m, &k, NULL, NULL, NULL);
     ok &= cJSON_AddBoolToObject(o, "projection", proj) != NULL;
+    if (proj)
+        ok &= cJSON_AddStringToObject(o, "projection_encoding",
+                                      lk_model_projection_encoding(m) == LK_MODEL_F64
+                                          ? "f64"
+                                          : "f32") != NULL;
     ok &= cJSON_AddStringToObject(o, "projection_norm",
                                   lk_model_projection_norm(m) == LK_PROJ_NORM_L2 ? "l2"
                                                                                  : "none") != NULL;

@@ -6,6 +6,7 @@
 
 #include <errno.h>
 #include <fcntl.h>
+#include <float.h>
 #include <math.h>
 #include <stdio.h>
 #include <stdlib.h>
@@ -29,8 +30,9 @@ struct lk_model {
     bool has_proj;
     size_t proj_k, proj_d;
     double *proj_mean;   /* d */
-    double *proj_matrix; /* k x d, row-major */
+    double *proj_matrix; /* k x d, row-major; already rounded to binary32 with F32 */
     lk_model_proj_norm proj_norm;
+    lk_model_proj_encoding proj_enc; /* how W is written; kept without a projection */
 
     bool has_std;
     size_t std_n;
@@ -66,6 +68,9 @@ lk_model *lk_model_new(void)
     uint8_t id[LK_MODEL_ID_BYTES];
     randombytes_buf(id, sizeof id);
     set_id(m, id);
+    /* binary32 by default: the default projection is ~7e6 values, and the
+     * rounding it costs is documented (docs/model-format.md, PROJ). */
+    m->proj_enc = LK_MODEL_F32;
     return m;
 }
 
@@ -185,6 +190,28 @@ static lk_code check_finite(const double *v, size_t n, const char *what, lk_erro
     return LK_OK;
 }
 
+/* Every value must survive the conversion to binary32 as a finite number.
+ * Values above FLT_MAX that would still round down to it are refused too:
+ * converting an out-of-range double to float is undefined in C17 6.3.1.5. */
+static lk_code check_f32_range(const double *v, size_t n, const char *what, lk_error *err)
+{
+    for (size_t i = 0; i < n; i++)
+        if (!(fabs(v[i]) <= FLT_MAX))
+            return lk_error_set(err, LK_ERR_INVALID_ARGUMENT,
+                                "%s[%zu] = %g does not fit a 32-bit float (|value| <= %g); "
+                                "choose the f64 projection encoding for it", what, i, v[i],
+                                (double)FLT_MAX);
+    return LK_OK;
+}
+
+/* Round to nearest binary32 (C17 F.3: the conversion honours the current
+ * rounding mode, round-to-nearest-even by default) and back, exactly. */
+static void round_to_f32(double *v, size_t n)
+{
+    for (size_t i = 0; i < n; i++)
+        v[i] = (double)(float)v[i];
+}
+
 static double *dup_doubles(const double *v, size_t n)
 {
     double *c = malloc((n ? n : 1) * sizeof *c);
@@ -253,12 +280,17 @@ lk_code lk_model_set_projection(lk_model *m, size_t k, size_t d, const double *m
     if ((c = check_finite(mean, d, "projection mean", err)) ||
         (c = check_finite(matrix, k * d, "projection matrix", err)))
         return c;
+    if (m->proj_enc == LK_MODEL_F32 &&
+        (c = check_f32_range(matrix, k * d, "projection matrix", err)))
+        return c;
     double *mc = dup_doubles(mean, d), *wc = dup_doubles(matrix, k * d);
     if (!mc || !wc) {
         free(mc);
         free(wc);
         return lk_error_set(err, LK_ERR_NOMEM, "out of memory copying a %zu x %zu projection", k, d);
     }
+    if (m->proj_enc == LK_MODEL_F32)
+        round_to_f32(wc, k * d);
     lk_model_proj_norm norm = m->proj_norm; /* replacing W keeps the normalisation */
     lk_model_clear_projection(m);
     m->proj_norm = norm;
@@ -281,6 +313,30 @@ lk_code lk_model_clear_projection(lk_model *m)
     m->has_proj = false;
     m->proj_norm = LK_PROJ_NORM_NONE;
     return LK_OK;
+}
+
+lk_code lk_model_set_projection_encoding(lk_model *m, lk_model_proj_encoding enc,
+                                         lk_error *err)
+{
+    if (!m)
+        return lk_error_set(err, LK_ERR_INVALID_ARGUMENT, "no model");
+    if (enc != LK_MODEL_F64 && enc != LK_MODEL_F32)
+        return lk_error_set(err, LK_ERR_INVALID_ARGUMENT,
+                            "projection encoding %d is unknown (use f64 or f32)", (int)enc);
+    if (enc == LK_MODEL_F32 && m->has_proj) {
+        lk_code c = check_f32_range(m->proj_matrix, m->proj_k * m->proj_d, "projection matrix",
+                                    err);
+        if (c)
+            return c;
+        round_to_f32(m->proj_matrix, m->proj_k * m->proj_d);
+    }
+    m->proj_enc = enc;
+    return LK_OK;
+}
+
+lk_model_proj_encoding lk_model_projection_encoding(const lk_model *m)
+{
+    return m ? m->proj_enc : LK_MODEL_F32;
 }
 
 lk_code lk_model_set_projection_norm(lk_model *m, lk_model_proj_norm mode, lk_error *err)
@@ -943,6 +999,18 @@ static void w_f64s(wbuf *w, const double *v, size_t n)
         w_f64(w, v[i]);
 }
 
+/* The values were rounded to binary32 by the setter, so the conversion
+ * here is exact. */
+static void w_f32s(wbuf *w, const double *v, size_t n)
+{
+    for (size_t i = 0; i < n; i++) {
+        float f = (float)v[i];
+        uint32_t u;
+        memcpy(&u, &f, 4);
+        w_u32(w, u);
+    }
+}
+
 static void w_str(wbuf *w, const char *s)
 {
     size_t n = strlen(s);
@@ -993,8 +1061,12 @@ lk_code lk_model_serialise(const lk_model *m, uint8_t **bytes, size_t *len, lk_e
         at = w_begin(&w, "PROJ");
         w_u32(&w, (uint32_t)m->proj_k);
         w_u32(&w, (uint32_t)m->proj_d);
+        w_u32(&w, (uint32_t)m->proj_enc);
         w_f64s(&w, m->proj_mean, m->proj_d);
-        w_f64s(&w, m->proj_matrix, m->proj_k * m->proj_d);
+        if (m->proj_enc == LK_MODEL_F32)
+            w_f32s(&w, m->proj_matrix, m->proj_k * m->proj_d);
+        else
+            w_f64s(&w, m->proj_matrix, m->proj_k * m->proj_d);
         w_end(&w, at);
     }
     if (m->proj_norm != LK_PROJ_NORM_NONE) {
@@ -1145,6 +1217,25 @@ static lk_code rd_f64s(rd *r, size_t n, const char *field, double *out, lk_error
     return LK_OK;
 }
 
+/* Reads n finite binary32 values into doubles (exact conversion). */
+static lk_code rd_f32s(rd *r, size_t n, const char *field, double *out, lk_error *err)
+{
+    if (n > (r->end - r->pos) / 4)
+        return rd_need(r, SIZE_MAX, field, err);
+    for (size_t i = 0; i < n; i++) {
+        uint32_t u = get_u32(r->p + r->pos);
+        float v;
+        memcpy(&v, &u, 4);
+        if (!isfinite(v))
+            return lk_error_set(err, LK_ERR_MODEL_FORMAT,
+                                "model file: %s.%s[%zu] at offset %zu is not a finite number",
+                                r->sec, field, i, r->pos);
+        out[i] = (double)v;
+        r->pos += 4;
+    }
+    return LK_OK;
+}
+
 static lk_code rd_f64(rd *r, const char *field, double *v, lk_error *err)
 {
     return rd_f64s(r, 1, field, v, err);
@@ -1230,20 +1321,39 @@ static lk_code parse_feat(lk_model *m, rd *r, lk_error *err)
 
 static lk_code parse_proj(lk_model *m, rd *r, size_t sec_at, lk_error *err)
 {
-    size_t start = r->pos, k, d;
+    size_t start = r->pos, k, d, enc_at;
+    uint32_t enc;
     lk_code c;
     if ((c = rd_dim(r, "k", &k, err)) || (c = rd_dim(r, "d", &d, err)))
         return c;
-    /* k, d <= 1e6, so 8 + 8d + 8kd <= 8.00001e12: no overflow in 64 bits. */
-    if ((c = rd_expect(r, 8 + 8 * (uint64_t)d + 8 * (uint64_t)k * d, start, err)))
+    enc_at = r->pos;
+    if ((c = rd_u32(r, "encoding", &enc, err)))
+        return c;
+    /* 0 is never written (corrupt); above 2 a newer writer's encoding. */
+    if (enc == 0)
+        return lk_error_set(err, LK_ERR_MODEL_FORMAT,
+                            "model file: PROJ.encoding at offset %zu is 0, which no writer "
+                            "produces (corrupt file)", enc_at);
+    if (enc != LK_MODEL_F64 && enc != LK_MODEL_F32)
+        return lk_error_set(err, LK_ERR_MODEL_FORMAT,
+                            "model file: PROJ.encoding at offset %zu is %u, which this version "
+                            "does not know; the file was written by a newer likeness, please "
+                            "upgrade", enc_at, enc);
+    /* k, d <= 1e6, so 12 + 8d + 8kd <= 8.00001e12: no overflow in 64 bits. */
+    const uint64_t elem = enc == LK_MODEL_F32 ? 4 : 8;
+    if ((c = rd_expect(r, 12 + 8 * (uint64_t)d + elem * (uint64_t)k * d, start, err)))
         return c;
     double *mean = malloc(d * sizeof *mean), *w = malloc(k * d * sizeof *w);
     if (!mean || !w) {
         c = lk_error_set(err, LK_ERR_NOMEM, "out of memory reading a %zu x %zu projection", k, d);
     } else if (!(c = rd_f64s(r, d, "mean", mean, err)) &&
-               !(c = rd_f64s(r, k * d, "matrix", w, err))) {
+               !(c = enc == LK_MODEL_F32 ? rd_f32s(r, k * d, "matrix", w, err)
+                                         : rd_f64s(r, k * d, "matrix", w, err))) {
         lk_error e;
-        if (lk_model_set_projection(m, k, d, mean, w, &e))
+        /* Values read from binary32 are exact in binary32: the setter's
+         * rounding leaves them unchanged, so a reload saves the same bytes. */
+        if (lk_model_set_projection_encoding(m, (lk_model_proj_encoding)enc, &e) ||
+            lk_model_set_projection(m, k, d, mean, w, &e))
             c = setter_failed(r, sec_at, &e, err);
     }
     free(mean);

@@ -13,6 +13,12 @@
   another order, plus an unknown optional section, with and without PRNM)
   must load in C and score the same as numpy; PRNM files the spec says to
   refuse (mode 0, unknown mode, no PROJ) must be refused.
+* Both encodings of the projection matrix (PROJ.encoding 1 = f64, 2 = f32):
+  C-written files of each are read here; numpy-written f32 files (W rounded
+  by numpy's astype(float32), IEEE 754 round to nearest) must score in C as
+  numpy scores them with the rounded W; the C projections of the same model
+  in f32 and f64 must differ by no more than the bound the spec documents;
+  encodings 0 and 3 and a NaN binary32 element must be refused.
 """
 import hashlib
 import json
@@ -82,10 +88,15 @@ def parse(data):
     d = m["d"]
     if b"PROJ" in sec:
         p = sec[b"PROJ"]
-        k, dd = struct.unpack_from("<II", p, 0)
-        assert dd == d and len(p) == 8 + 8 * d + 8 * k * d
-        m["mu"] = np.frombuffer(p, "<f8", d, 8)
-        m["W"] = np.frombuffer(p, "<f8", k * d, 8 + 8 * d).reshape(k, d)
+        k, dd, enc = struct.unpack_from("<III", p, 0)
+        assert enc in (1, 2), enc
+        esize, etype = (8, "<f8") if enc == 1 else (4, "<f4")
+        assert dd == d and len(p) == 12 + 8 * d + esize * k * d
+        m["mu"] = np.frombuffer(p, "<f8", d, 12)
+        W = np.frombuffer(p, etype, k * d, 12 + 8 * d).reshape(k, d)
+        assert np.all(np.isfinite(W)) and np.all(np.isfinite(m["mu"]))
+        m["W"] = W.astype(np.float64)  # exact for binary32 values
+        m["enc"] = "f64" if enc == 1 else "f32"
     m["l2"] = False
     if b"PRNM" in sec:
         p = sec[b"PRNM"]
@@ -200,6 +211,8 @@ def check_json(m, path, tag):
               (r[5], r[6], bool(r[7] & 1)), f"{tag}: row {r}")
     check(j["provenance"] == m["prov"], f"{tag}: provenance {j['provenance']} vs {m['prov']}")
     check(j["projection"] == ("W" in m), f"{tag}: projection flag")
+    check(j.get("projection_encoding") == m.get("enc"),
+          f"{tag}: projection_encoding {j.get('projection_encoding')} vs {m.get('enc')}")
     check(j["projection_norm"] == ("l2" if m["l2"] else "none"),
           f"{tag}: projection_norm {j['projection_norm']}")
     check("weights" not in json.dumps(j), f"{tag}: JSON must not hold weights")
@@ -216,9 +229,11 @@ def pstr(s):
     return struct.pack("<I", len(b)) + b
 
 
-def write_model(rng, d, k, prnm=None, proj=True):
+def write_model(rng, d, k, prnm=None, proj=True, enc=2, nan_at=None):
     """prnm: None (no PRNM section) or (flags, mode). proj=False leaves PROJ
-    out (SVM and STDZ then have k = d)."""
+    out (SVM and STDZ then have k = d). enc: PROJ.encoding written (2 = f32,
+    W rounded by numpy; 1 = f64; anything else is written as an f32 file with
+    that code). nan_at: index of W to replace by a NaN."""
     if not proj:
         k = d
     mu = rng.standard_normal(d)
@@ -247,8 +262,11 @@ def write_model(rng, d, k, prnm=None, proj=True):
         section(b"STDZ", struct.pack("<I", k) + sm.astype("<f8").tobytes() + ss.astype("<f8").tobytes()),
     ]
     if proj:
-        secs.append(section(b"PROJ", struct.pack("<II", k, d) + mu.astype("<f8").tobytes() +
-                            W.astype("<f8").tobytes()))
+        Wb = W.astype("<f8" if enc == 1 else "<f4").reshape(-1)
+        if nan_at is not None:
+            Wb[nan_at] = np.nan
+        secs.append(section(b"PROJ", struct.pack("<III", k, d, enc) + mu.astype("<f8").tobytes() +
+                            Wb.tobytes()))
     secs += [
         section(b"PLAT", struct.pack("<dd", A, B)),
         section(b"FEAT", struct.pack("<I", d) + pstr(config)),
@@ -266,14 +284,19 @@ def write_model(rng, d, k, prnm=None, proj=True):
 def main():
     rng = np.random.default_rng(20261202)
     with tempfile.TemporaryDirectory() as tmp:
-        cases = [("projection+standardisation", 64, 20, 1, 0), ("projection", 48, 10, 0, 0),
-                 ("no projection", 30, 0, 1, 0), ("projection+L2+standardisation", 64, 20, 1, 1),
-                 ("projection+L2", 20, 32, 0, 1)]
-        for seed, (tag, d, k, stdz, l2) in enumerate(cases, start=5):
+        cases = [("projection+standardisation", 64, 20, 1, 0, "f32"),
+                 ("projection", 48, 10, 0, 0, "f32"),
+                 ("no projection", 30, 0, 1, 0, "f32"),
+                 ("projection+L2+standardisation", 64, 20, 1, 1, "f32"),
+                 ("projection+L2", 20, 32, 0, 1, "f32"),
+                 ("f64 projection+standardisation", 64, 20, 1, 0, "f64"),
+                 ("f64 projection+L2", 20, 32, 0, 1, "f64")]
+        for seed, (tag, d, k, stdz, l2, enc) in enumerate(cases, start=5):
             path = os.path.join(tmp, f"m{seed}.lkmodel")
-            run("make", path, str(seed), str(d), str(k), str(stdz), str(l2))
+            run("make", path, str(seed), str(d), str(k), str(stdz), str(l2), enc)
             data = open(path, "rb").read()
             m = parse(data)
+            check(m.get("enc") == (enc if k > 0 else None), f"{tag}: encoding {m.get('enc')}")
             # RFC 7693 BLAKE2b-256 via hashlib, over every byte before the digest.
             ref = hashlib.blake2b(data[:m["digest_at"]], digest_size=32).digest()
             check(ref == m["checksum"], f"{tag}: stored checksum differs from hashlib.blake2b")
@@ -299,6 +322,33 @@ def main():
         check_json(m, path, "numpy-written")
         compare_scores(m, path, tmp, rng, "numpy-written")
 
+        # The same numpy model in both encodings: the C projections differ
+        # by at most the documented bound 2^-24 sum_j |W_ij| |x_j - mu_j|
+        # (plus the binary64 rounding of two d-term sums, 2 d 2^-53 of it).
+        paths, models = {}, {}
+        for enc in (1, 2):
+            data = write_model(np.random.default_rng(31), 60, 16, enc=enc)
+            paths[enc] = os.path.join(tmp, f"numpy-enc{enc}.lkmodel")
+            open(paths[enc], "wb").write(data)
+            models[enc] = parse(data)
+            compare_scores(models[enc], paths[enc], tmp, rng, f"numpy-written encoding {enc}")
+        W64, W32 = models[1]["W"], models[2]["W"]
+        rel = np.max(np.abs(W32 - W64) / np.abs(W64))
+        check(rel <= 2.0 ** -24, f"f32 element rounding {rel} above 2^-24")
+        x = rng.standard_normal((50, 60)).astype("<f4")
+        vp = os.path.join(tmp, "vecs-enc.f32")
+        x.tofile(vp)
+        y = {e: np.array([list(map(float, line.split()))
+                          for line in run("project", paths[e], vp).stdout.splitlines()])
+             for e in (1, 2)}
+        absum = np.abs(W64) @ np.abs(x.astype(np.float64) - models[1]["mu"]).T  # k x n
+        bound = (2.0 ** -24 + 2 * 60 * 2.0 ** -53) * absum.T
+        ratio = np.max(np.abs(y[2] - y[1]) / (2.0 ** -24 * absum.T))
+        check(np.all(np.abs(y[2] - y[1]) <= bound), f"f32 projection outside the bound ({ratio})")
+        print(f"f32 vs f64 numpy-written model: W rounding {rel:.3g} (<= 2^-24 = {2.0 ** -24:.3g}); "
+              f"|y32 - y64| reaches {ratio:.3f} of the documented bound; files "
+              f"{os.path.getsize(paths[2])} / {os.path.getsize(paths[1])} bytes")
+
         # The same model with PRNM (REQUIRED and not) written here: C must
         # normalise exactly as numpy does.
         for flags in (1, 0):
@@ -313,7 +363,11 @@ def main():
         # Files the spec says to refuse.
         refusals = [("PRNM mode 0", dict(prnm=(1, 0)), "PRNM.mode"),
                     ("PRNM mode 2", dict(prnm=(1, 2)), "upgrade"),
-                    ("PRNM without PROJ", dict(prnm=(1, 1), proj=False), "no projection")]
+                    ("PRNM without PROJ", dict(prnm=(1, 1), proj=False), "no projection"),
+                    ("PROJ.encoding 0", dict(enc=0), "PROJ.encoding"),
+                    ("PROJ.encoding 3", dict(enc=3), "upgrade"),
+                    ("NaN in an f32 W", dict(nan_at=5), "PROJ.matrix[5]"),
+                    ("NaN in an f64 W", dict(enc=1, nan_at=5), "PROJ.matrix[5]")]
         for tag, kw, needle in refusals:
             data = write_model(np.random.default_rng(8), 40, 12, **kw)
             path = os.path.join(tmp, "refused.lkmodel")

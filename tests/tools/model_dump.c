@@ -1,6 +1,7 @@
 /* Drives the model module for tests/ref/check_model_blake2b.py:
- *   lkt_model_dump make <out> <seed> <d> <k> <stdz> [l2]   random model (k = 0: no
- *       projection; l2 = 1: L2 normalisation of the projected vector)
+ *   lkt_model_dump make <out> <seed> <d> <k> <stdz> [l2 [enc]]   random model (k = 0: no
+ *       projection; l2 = 1: L2 normalisation of the projected vector; enc = f32 (the
+ *       library's default) or f64: the projection encoding)
  *   lkt_model_dump json <model>                       lk_model_to_json
  *   lkt_model_dump score <model> <pairs.f32>          one "svm probability" line per pair;
  *       the file holds float32 little-endian vectors a0 b0 a1 b1 ... of dimension d
@@ -29,12 +30,18 @@ static double rnd(uint64_t *s)
     return (double)(z >> 11) * 0x1.0p-52 - 1.0;
 }
 
-static int make(const char *out, uint64_t seed, size_t d, size_t k, int stdz, int l2)
+static int make(const char *out, uint64_t seed, size_t d, size_t k, int stdz, int l2,
+                const char *enc)
 {
     lk_error e;
     lk_model *m = lk_model_new();
     if (!m)
         return 2;
+    if (enc && strcmp(enc, "f64") && strcmp(enc, "f32")) {
+        fprintf(stderr, "invalid_argument: encoding %s is neither f32 nor f64\n", enc);
+        lk_model_free(m);
+        return 2;
+    }
     size_t n = k ? k : d;
     double *mean = malloc(d * sizeof *mean), *w = malloc((k ? k : 1) * d * sizeof *w);
     double *sm = malloc(n * sizeof *sm), *ss = malloc(n * sizeof *ss), *sv = malloc(n * sizeof *sv);
@@ -61,6 +68,8 @@ static int make(const char *out, uint64_t seed, size_t d, size_t k, int stdz, in
     lk_model_provenance p = {"synthetic \xe2\x9c\x93", 1000, 200, 500, "2026-12-02T05:00:00Z",
                              "lkt_model_dump make", "0.1.0"};
     lk_code c = lk_model_set_features(m, "crop=96x112;hog=cell8,bins9", d, &e);
+    if (!c && enc && strcmp(enc, "f64") == 0)
+        c = lk_model_set_projection_encoding(m, LK_MODEL_F64, &e);
     if (!c && k)
         c = lk_model_set_projection(m, k, d, mean, w, &e);
     if (!c && l2)
@@ -158,9 +167,10 @@ static int project(const char *model, const char *vecs)
 
 int main(int argc, char **argv)
 {
-    if ((argc == 7 || argc == 8) && strcmp(argv[1], "make") == 0)
+    if (argc >= 7 && argc <= 9 && strcmp(argv[1], "make") == 0)
         return make(argv[2], strtoull(argv[3], NULL, 10), strtoul(argv[4], NULL, 10),
-                    strtoul(argv[5], NULL, 10), atoi(argv[6]), argc == 8 ? atoi(argv[7]) : 0);
+                    strtoul(argv[5], NULL, 10), atoi(argv[6]), argc >= 8 ? atoi(argv[7]) : 0,
+                    argc == 9 ? argv[8] : NULL);
     if (argc == 4 && strcmp(argv[1], "project") == 0)
         return project(argv[2], argv[3]);
     if (argc == 3 && strcmp(argv[1], "json") == 0) {
@@ -178,7 +188,7 @@ int main(int argc, char **argv)
     }
     if (argc == 4 && strcmp(argv[1], "score") == 0)
         return score(argv[2], argv[3]);
-    fprintf(stderr, "usage: %s make <out> <seed> <d> <k> <stdz> [l2] | json <model> | score "
+    fprintf(stderr, "usage: %s make <out> <seed> <d> <k> <stdz> [l2 [f32|f64]] | json <model> | score "
                     "<model> <pairs.f32> | project <model> <vecs.f32>\n", argv[0]);
     return 2;
 }

@@ -6,8 +6,10 @@
  * (ASan/UBSan and valgrind watch for the crash part); crafted files with a
  * valid checksum exercise the field checks, including the PRNM section
  * (L2 normalisation of the projected vector: modes, REQUIRED flag, PRNM
- * without PROJ, zero and overflowing projections, non-finite input). The
- * checksum itself is checked against Python's hashlib in
+ * without PROJ, zero and overflowing projections, non-finite input) and the
+ * PROJ encodings (f64 and the default f32: layout, sizes, rounding of W,
+ * scores with the test's own rounded W, the documented error bound,
+ * crafted encoding fields, the sweeps on both layouts). The checksum itself is checked against Python's hashlib in
  * tests/ref/check_model_blake2b.py. */
 #include "likeness/model.h"
 #include "lk_test.h"
@@ -41,7 +43,18 @@ static const lk_model_operating_point ROWS[3] = {
     {1e-2, 0.60, 0.25, 0.95e-2, 0.05, 200000, 3000, true},
 };
 
-static lk_model *build(size_t d, size_t k, bool proj, bool stdz, bool l2, uint64_t seed)
+/* The projection build() sets for this seed, as given to the setter (before
+ * any rounding); s is left where build() continues. */
+static void gen_projection(size_t d, size_t k, uint64_t *s, double *mean, double *w)
+{
+    for (size_t i = 0; i < d; i++)
+        mean[i] = rng_unit(s);
+    for (size_t i = 0; i < k * d; i++)
+        w[i] = rng_unit(s) / sqrt((double)d);
+}
+
+static lk_model *build_enc(size_t d, size_t k, bool proj, bool stdz, bool l2, uint64_t seed,
+                           lk_model_proj_encoding enc)
 {
     uint64_t s = seed;
     lk_error e;
@@ -51,16 +64,15 @@ static lk_model *build(size_t d, size_t k, bool proj, bool stdz, bool l2, uint64
     size_t n = proj ? k : d;
     double *mean = malloc(d * sizeof *mean), *w = malloc(k * d * sizeof *w);
     double *sm = malloc(n * sizeof *sm), *ss = malloc(n * sizeof *ss), *sv = malloc(n * sizeof *sv);
-    for (size_t i = 0; i < d; i++)
-        mean[i] = rng_unit(&s);
-    for (size_t i = 0; i < k * d; i++)
-        w[i] = rng_unit(&s) / sqrt((double)d);
+    gen_projection(d, k, &s, mean, w);
     for (size_t i = 0; i < n; i++) {
         sm[i] = 0.5 + rng_unit(&s) * 0.1;
         ss[i] = 0.75 + 0.5 * rng_unit(&s);
         sv[i] = rng_unit(&s);
     }
     int bad = 0;
+    if (enc != LK_MODEL_F32) /* F32 is the default: leave it implicit there */
+        bad |= lk_model_set_projection_encoding(m, enc, &e);
     bad |= lk_model_set_features(m, "crop=96x112;hog=cell8,bins9;lbp=u2", d, &e);
     if (l2) /* before the projection on purpose: the setters' order must not matter */
         bad |= lk_model_set_projection_norm(m, LK_PROJ_NORM_L2, &e);
@@ -85,6 +97,11 @@ static lk_model *build(size_t d, size_t k, bool proj, bool stdz, bool l2, uint64
         return NULL;
     }
     return m;
+}
+
+static lk_model *build(size_t d, size_t k, bool proj, bool stdz, bool l2, uint64_t seed)
+{
+    return build_enc(d, k, proj, stdz, l2, seed, LK_MODEL_F32);
 }
 
 static bool same_doubles(const double *a, const double *b, size_t n)
@@ -142,12 +159,16 @@ static void check_equal(const lk_model *a, const lk_model *b, const char *what)
 }
 
 /* y = W (x - mu) of docs/model-format.md "Scoring" in long double, then
- * y / ||y||_2 when PRNM says so (a zero y stays zero). */
-static void direct_project(const lk_model *m, const float *x, long double *y)
+ * y / ||y||_2 when PRNM says so (a zero y stays zero). W_own: a matrix
+ * the test computed itself instead of the model's (NULL: the model's). */
+static void direct_project(const lk_model *m, const double *W_own, const float *x, long double *y)
 {
     size_t d = lk_model_feature_dim(m), k = d;
     const double *mu = NULL, *W = NULL;
-    if (!lk_model_projection(m, &k, NULL, &mu, &W)) {
+    bool has = lk_model_projection(m, &k, NULL, &mu, &W);
+    if (W_own)
+        W = W_own;
+    if (!has) {
         for (size_t j = 0; j < d; j++)
             y[j] = x[j];
         return;
@@ -172,8 +193,8 @@ static void direct_project(const lk_model *m, const float *x, long double *y)
 /* The formula of docs/model-format.md "Scoring", step by step, with the
  * projection mean applied to each vector as written (the library cancels it
  * when there is no normalisation). */
-static void direct_score(const lk_model *m, const float *a, const float *b, long double *f,
-                         long double *p)
+static void direct_score(const lk_model *m, const double *W_own, const float *a, const float *b,
+                         long double *f, long double *p)
 {
     size_t n;
     const double *sm = NULL, *ss = NULL, *w;
@@ -183,8 +204,8 @@ static void direct_score(const lk_model *m, const float *a, const float *b, long
     lk_model_platt(m, &A, &B);
     size_t k = lk_model_pair_dim(m), big = k > lk_model_feature_dim(m) ? k : lk_model_feature_dim(m);
     long double *ya = malloc(big * sizeof *ya), *yb = malloc(big * sizeof *yb);
-    direct_project(m, a, ya);
-    direct_project(m, b, yb);
+    direct_project(m, W_own, a, ya);
+    direct_project(m, W_own, b, yb);
     long double acc = bias;
     for (size_t i = 0; i < k; i++) {
         long double z = (ya[i] - yb[i]) * (ya[i] - yb[i]);
@@ -399,7 +420,7 @@ static void scoring(const lk_model *m, uint64_t seed)
         lk_code c = lk_model_score(m, a, b, scratch, &f, &p, &e);
         CHECK(c == LK_OK, "score: %s", e.message);
         long double df, dp;
-        direct_score(m, a, b, &df, &dp);
+        direct_score(m, NULL, a, b, &df, &dp);
         double ef = fabs((double)(f - df)) / (1 + fabs((double)df));
         double ep = fabs((double)(p - dp));
         if (ef > worst_f)
@@ -631,18 +652,27 @@ static void zero_and_huge(void)
     long double df, dp;
     CHECK(lk_model_score(m, at_mean, other, scratch, &f, &p, &e) == LK_OK, "score with zero y: %s",
           e.message);
-    direct_score(m, at_mean, other, &df, &dp);
+    direct_score(m, NULL, at_mean, other, &df, &dp);
     CHECK(fabs((double)(f - df)) < 1e-12 * (1 + fabs((double)df)), "zero y scores by the formula");
     /* |y| about 1e218: sum of squares would overflow binary64. */
     for (size_t i = 0; i < 6; i++)
         W[i] *= 1e180;
+    /* Beyond binary32's range (IEEE 754: largest finite 2^128 - 2^104):
+     * refused with the default encoding, accepted with f64. */
+    CHECK(lk_model_set_projection(m, 2, 3, mu, W, &e) == LK_ERR_INVALID_ARGUMENT &&
+              strstr(e.message, "f64"),
+          "huge W refused for f32: %s", e.message);
+    CHECK(lk_model_set_projection_encoding(m, LK_MODEL_F64, &e) == LK_OK, "f64: %s", e.message);
     CHECK(lk_model_set_projection(m, 2, 3, mu, W, &e) == LK_OK, "huge W: %s", e.message);
+    CHECK(lk_model_set_projection_encoding(m, LK_MODEL_F32, &e) == LK_ERR_INVALID_ARGUMENT &&
+              lk_model_projection_encoding(m) == LK_MODEL_F64,
+          "switch to f32 refused with huge W, encoding unchanged: %s", e.message);
     const float huge[3] = {1e38f, 1e37f, -1e38f};
     CHECK(lk_model_project(m, huge, y, &e) == LK_OK && isfinite(y[0]) && isfinite(y[1]) &&
               fabs(hypot(y[0], y[1]) - 1) < 1e-15,
           "huge y normalised without overflow (%g %g)", y[0], y[1]);
     CHECK(lk_model_score(m, huge, other, scratch, &f, &p, &e) == LK_OK, "huge score: %s", e.message);
-    direct_score(m, huge, other, &df, &dp);
+    direct_score(m, NULL, huge, other, &df, &dp);
     CHECK(fabs((double)(f - df)) < 1e-12 * (1 + fabs((double)df)), "huge y scores by the formula");
     const float bad[3] = {NAN, 0, 0};
     CHECK(lk_model_project(m, bad, y, &e) == LK_ERR_INVALID_ARGUMENT, "NaN refused by project");
@@ -675,6 +705,217 @@ static void zero_and_huge(void)
     free(js);
     free(scratch);
     lk_model_free(m);
+}
+
+/* Reads a little-endian binary32 from the file bytes (IEEE 754 layout). */
+static float get_f32(const uint8_t *p)
+{
+    uint32_t u = (uint32_t)p[0] | (uint32_t)p[1] << 8 | (uint32_t)p[2] << 16 | (uint32_t)p[3] << 24;
+    float f;
+    memcpy(&f, &u, 4);
+    return f;
+}
+
+/* The two encodings of PROJ (docs/model-format.md, PROJ): layout and size of
+ * each, the rounding of W to binary32 (IEEE 754 round to nearest, done here
+ * by the C cast), scores of the rounded model by the formula with the test's
+ * own rounded W, the documented bound on y = W (x - mu), and crafted
+ * encoding fields. */
+static void encodings(void)
+{
+    enum { D = 40, K = 12 };
+    const uint64_t seed = 5150;
+    lk_error e;
+    lk_model *m64 = build_enc(D, K, true, true, false, seed, LK_MODEL_F64);
+    lk_model *m32 = build_enc(D, K, true, true, false, seed, LK_MODEL_F32);
+    CHECK(m64 && m32, "build f64 and f32 models");
+    if (!m64 || !m32) {
+        lk_model_free(m64);
+        lk_model_free(m32);
+        return;
+    }
+    double *mu = malloc(D * sizeof *mu), *W = malloc(K * D * sizeof *W);
+    double *W32 = malloc(K * D * sizeof *W32);
+    uint64_t s = seed;
+    gen_projection(D, K, &s, mu, W);
+    int not_rounded = 0, exact_in_f32 = 0;
+    double worst_rel = 0;
+    for (size_t i = 0; i < K * D; i++) {
+        W32[i] = (double)(float)W[i];
+        exact_in_f32 += W32[i] == W[i];
+        double rel = fabs(W32[i] - W[i]) / fabs(W[i]);
+        worst_rel = rel > worst_rel ? rel : worst_rel;
+    }
+    /* IEEE 754 round to nearest: relative error <= 2^-24 (unit roundoff). */
+    CHECK(worst_rel <= 0x1p-24, "element rounding %.3g <= 2^-24", worst_rel);
+    CHECK(exact_in_f32 < K * D / 10, "test W mostly not exact in f32 (%d)", exact_in_f32);
+    CHECK(lk_model_projection_encoding(m64) == LK_MODEL_F64 &&
+              lk_model_projection_encoding(m32) == LK_MODEL_F32, "encodings reported");
+    const double *g64 = NULL, *g32 = NULL, *gm = NULL;
+    lk_model_projection(m64, NULL, NULL, NULL, &g64);
+    lk_model_projection(m32, NULL, NULL, &gm, &g32);
+    CHECK(same_doubles(g64, W, K * D), "f64 keeps W exactly");
+    for (size_t i = 0; i < K * D; i++)
+        not_rounded += g32[i] != W32[i];
+    CHECK(not_rounded == 0, "f32 getter returns W rounded to binary32 (%d differ)", not_rounded);
+    CHECK(same_doubles(gm, mu, D), "mean kept in binary64");
+
+    uint8_t *b64 = NULL, *b32 = NULL;
+    size_t l64 = 0, l32 = 0;
+    CHECK(lk_model_serialise(m64, &b64, &l64, &e) == LK_OK, "serialise f64: %s", e.message);
+    CHECK(lk_model_serialise(m32, &b32, &l32, &e) == LK_OK, "serialise f32: %s", e.message);
+    if (!b64 || !b32)
+        goto out;
+    /* Layout of docs/model-format.md PROJ: k, d, encoding, mean f64[d], matrix. */
+    size_t p64 = find_section(b64, l64, "PROJ"), p32 = find_section(b32, l32, "PROJ");
+    CHECK(p64 && p32, "PROJ in both");
+    uint64_t sl64 = 0, sl32 = 0;
+    for (int i = 7; i >= 0; i--) {
+        sl64 = sl64 << 8 | b64[p64 + 8 + i];
+        sl32 = sl32 << 8 | b32[p32 + 8 + i];
+    }
+    CHECK(sl64 == 12 + 8 * D + 8 * K * D && sl32 == 12 + 8 * D + 4 * K * D,
+          "PROJ lengths %llu %llu", (unsigned long long)sl64, (unsigned long long)sl32);
+    CHECK(l64 - l32 == 4 * K * D, "f32 file smaller by 4kd bytes (%zu vs %zu)", l32, l64);
+    CHECK(b64[p64 + 24] == 1 && b32[p32 + 24] == 2 && !b32[p32 + 25] && !b32[p32 + 26] &&
+              !b32[p32 + 27], "encoding field 1 / 2");
+    int bad_bytes = 0;
+    for (size_t i = 0; i < K * D; i++)
+        bad_bytes += get_f32(b32 + p32 + 28 + 8 * D + 4 * i) != (float)W[i];
+    CHECK(bad_bytes == 0, "f32 matrix bytes are W rounded (%d differ)", bad_bytes);
+
+    lk_model *l64m = lk_model_load_bytes(b64, l64, &e);
+    CHECK(l64m != NULL, "load f64: %s", e.message);
+    lk_model *l32m = lk_model_load_bytes(b32, l32, &e);
+    CHECK(l32m != NULL, "load f32: %s", e.message);
+    if (l64m && l32m) {
+        check_equal(m64, l64m, "f64 file");
+        check_equal(m32, l32m, "f32 file");
+        CHECK(lk_model_projection_encoding(l64m) == LK_MODEL_F64 &&
+                  lk_model_projection_encoding(l32m) == LK_MODEL_F32, "loaded encodings");
+        uint8_t *again = NULL;
+        size_t la = 0;
+        CHECK(lk_model_serialise(l64m, &again, &la, &e) == LK_OK && la == l64 &&
+                  memcmp(again, b64, la) == 0, "f64: save -> load -> save identical");
+        free(again);
+        char *js = lk_model_to_json(l64m);
+        CHECK(js && strstr(js, "\"projection_encoding\":\"f64\""), "json f64");
+        free(js);
+        js = lk_model_to_json(l32m);
+        CHECK(js && strstr(js, "\"projection_encoding\":\"f32\""), "json f32");
+        free(js);
+
+        /* Scores of the loaded f32 model against the formula with the
+         * test's own rounded W; y of both against the documented bound
+         * |y32_i - y64_i| <= 2^-24 sum_j |W_ij| |x_j - mu_j| (plus the
+         * binary64 rounding of the two sums, 2 d 2^-53 of the same sum,
+         * Higham 2002 "Accuracy and Stability of Numerical Algorithms"
+         * eq. 3.5, recalled from memory). */
+        double *scratch = malloc(lk_model_scratch_size(l32m) * sizeof *scratch);
+        float a[D], bb[D];
+        double y64[K], y32[K], worst_f = 0, worst_ratio = 0, worst_df = 0;
+        uint64_t r = 99;
+        int bound_bad = 0;
+        for (int t = 0; t < 200; t++) {
+            for (size_t j = 0; j < D; j++) {
+                a[j] = (float)rng_unit(&r);
+                bb[j] = (t % 4 == 0) ? a[j] + (float)(0.05 * rng_unit(&r)) : (float)rng_unit(&r);
+            }
+            double f32v, f64v, p;
+            CHECK(lk_model_score(l32m, a, bb, scratch, &f32v, &p, &e) == LK_OK &&
+                      lk_model_score(l64m, a, bb, scratch, &f64v, NULL, &e) == LK_OK,
+                  "score: %s", e.message);
+            long double df, dp;
+            direct_score(l32m, W32, a, bb, &df, &dp);
+            double ef = fabs((double)(f32v - df)) / (1 + fabs((double)df));
+            worst_f = ef > worst_f ? ef : worst_f;
+            double dd = fabs(f32v - f64v) / (1 + fabs(f64v));
+            worst_df = dd > worst_df ? dd : worst_df;
+            CHECK(lk_model_project(l32m, a, y32, &e) == LK_OK &&
+                      lk_model_project(l64m, a, y64, &e) == LK_OK, "project: %s", e.message);
+            for (size_t i = 0; i < K; i++) {
+                double absum = 0;
+                for (size_t j = 0; j < D; j++)
+                    absum += fabs(W[i * D + j]) * fabs((double)a[j] - mu[j]);
+                double bound = (0x1p-24 + 2.0 * D * 0x1p-53) * absum;
+                double diff = fabs(y32[i] - y64[i]);
+                bound_bad += diff > bound;
+                double ratio = diff / (0x1p-24 * absum);
+                worst_ratio = ratio > worst_ratio ? ratio : worst_ratio;
+            }
+        }
+        CHECK(worst_f < 1e-12, "f32 model score vs formula with rounded W: %.3g", worst_f);
+        CHECK(bound_bad == 0, "%d projected values outside the documented f32 bound", bound_bad);
+        printf("f32 vs f64 PROJ (d=%d k=%d): files %zu / %zu bytes; element rounding <= %.3g; "
+               "|dy| reaches %.3f of the bound; relative SVM-value change %.3g; f32 model vs "
+               "formula %.3g\n", D, K, l32, l64, worst_rel, worst_ratio, worst_df, worst_f);
+        free(scratch);
+
+        /* f32 file -> F64 -> save: the rounded values written exactly as
+         * f64, which loads to the same matrix. */
+        CHECK(lk_model_set_projection_encoding(l32m, LK_MODEL_F64, &e) == LK_OK, "to f64");
+        uint8_t *wide = NULL;
+        size_t lw = 0;
+        CHECK(lk_model_serialise(l32m, &wide, &lw, &e) == LK_OK && lw == l64, "widened size");
+        lk_model *wm = wide ? lk_model_load_bytes(wide, lw, &e) : NULL;
+        CHECK(wm && lk_model_projection_encoding(wm) == LK_MODEL_F64, "widened loads");
+        if (wm)
+            check_equal(m32, wm, "widened");
+        lk_model_free(wm);
+        free(wide);
+        /* f64 model -> F32: rounded in place, then the f32 bytes. */
+        CHECK(lk_model_set_projection_encoding(l64m, LK_MODEL_F32, &e) == LK_OK, "to f32");
+        lk_model_projection(l64m, NULL, NULL, NULL, &g64);
+        CHECK(same_doubles(g64, W32, K * D), "switching to f32 rounds W");
+        CHECK(lk_model_set_projection_encoding(l64m, (lk_model_proj_encoding)3, &e) ==
+                  LK_ERR_INVALID_ARGUMENT, "unknown encoding refused");
+    }
+    lk_model_free(l64m);
+    lk_model_free(l32m);
+
+    /* Crafted PROJ.encoding values, checksum redone. */
+    uint8_t *c = malloc(l64 > l32 ? l64 : l32);
+    memcpy(c, b32, l32);
+    put32(c + p32 + 24, 0);
+    reseal(c, l32);
+    CHECK(load_code(c, l32, &e) == LK_ERR_MODEL_FORMAT && strstr(e.message, "PROJ.encoding") &&
+              strstr(e.message, "corrupt"), "encoding 0: %s", e.message);
+    put32(c + p32 + 24, 3);
+    reseal(c, l32);
+    CHECK(load_code(c, l32, &e) == LK_ERR_MODEL_FORMAT && strstr(e.message, "upgrade"),
+          "encoding 3: %s", e.message);
+    put32(c + p32 + 24, 1); /* f64 claimed, f32-sized payload */
+    reseal(c, l32);
+    CHECK(load_code(c, l32, &e) == LK_ERR_MODEL_FORMAT && strstr(e.message, "PROJ"),
+          "f64 with f32 length: %s", e.message);
+    memcpy(c, b64, l64);
+    put32(c + p64 + 24, 2); /* f32 claimed, f64-sized payload */
+    reseal(c, l64);
+    CHECK(load_code(c, l64, &e) == LK_ERR_MODEL_FORMAT && strstr(e.message, "PROJ"),
+          "f32 with f64 length: %s", e.message);
+    /* Non-finite binary32 values (IEEE 754: exponent all ones). */
+    static const uint32_t nonfinite[2] = {0x7fc00000u, 0xff800000u};
+    for (int i = 0; i < 2; i++) {
+        memcpy(c, b32, l32);
+        size_t at = p32 + 28 + 8 * D + 4; /* matrix[1] */
+        put32(c + at, nonfinite[i]);
+        reseal(c, l32);
+        char want[64];
+        snprintf(want, sizeof want, "offset %zu", at);
+        CHECK(load_code(c, l32, &e) == LK_ERR_MODEL_FORMAT && strstr(e.message, "PROJ.matrix[1]") &&
+                  strstr(e.message, want), "non-finite f32 %08x: %s", nonfinite[i], e.message);
+    }
+    free(c);
+    /* The robustness sweeps on the f64 layout too (the f32 one is swept in main). */
+    robustness(b64, l64);
+out:
+    free(b64);
+    free(b32);
+    free(mu);
+    free(W);
+    free(W32);
+    lk_model_free(m64);
+    lk_model_free(m32);
 }
 
 int main(void)
@@ -757,6 +998,7 @@ int main(void)
     for (int i = 0; i < 3; i++)
         free(kept[i]);
     zero_and_huge();
+    encodings();
     lk_model *empty = lk_model_new();
     lk_error e;
     CHECK(lk_model_save(empty, "/tmp/never-written.lkmodel", &e) == LK_ERR_INVALID_ARGUMENT,
