@@ -308,7 +308,22 @@ int cmd_train(int argc, char **argv)
                                         "identities with at least two images");
         goto done;
     }
-    {
+    if (ds) {
+        /* Every image of the data set, so that the feature cache is shared
+         * with `likeness lfw` on the same folder. */
+        size_t total = 0;
+        for (size_t i = 0; i < ds->count; i++)
+            total += ds->identities[i].n_paths;
+        paths = malloc((total + 1) * sizeof *paths);
+        if (!paths)
+            goto nomem;
+        size_t n = 0;
+        for (size_t i = 0; i < ds->count; i++)
+            for (size_t k = 0; k < ds->identities[i].n_paths; k++)
+                paths[n++] = ds->identities[i].paths[k];
+        if (featset_build(e, paths, n, (int)threads, cache, &fs, &err) != LK_OK)
+            goto done;
+    } else {
         size_t nt = train->count, nc = calib->count;
         paths = malloc((2 * (nt + nc) + 1) * sizeof *paths);
         if (!paths)

@@ -1,6 +1,7 @@
 #include "recipe.h"
 
 #include <math.h>
+#include <pthread.h>
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
@@ -63,6 +64,36 @@ int recipe_rows_of_pairs(const featset *fs, const lk_pair *pairs, size_t n_pairs
     return 0;
 }
 
+typedef struct proj_job {
+    const lk_model *m;
+    const featset *fs;
+    const uint8_t *need;
+    float *z;
+    size_t k, first, step;
+    lk_code rc;
+    lk_error err;
+} proj_job;
+
+/* Rows first, first + step, ...: the two threads share the work evenly. */
+static void *proj_worker(void *arg)
+{
+    proj_job *j = arg;
+    double *tmp = malloc((j->k + 1) * sizeof *tmp);
+    if (!tmp) {
+        j->rc = lk_error_set(&j->err, LK_ERR_NOMEM, "out of memory");
+        return NULL;
+    }
+    for (size_t i = j->first; i < j->fs->n && j->rc == LK_OK; i += j->step) {
+        if (!j->fs->ok[i] || !j->need[i])
+            continue;
+        j->rc = lk_model_project(j->m, j->fs->x + i * j->fs->dim, tmp, &j->err);
+        for (size_t c = 0; c < j->k && j->rc == LK_OK; c++)
+            j->z[i * j->k + c] = (float)tmp[c];
+    }
+    free(tmp);
+    return NULL;
+}
+
 /* Projects, through m, the images with features that the pairs use (k
  * values each; other rows are left unset): projecting is k*d work per image,
  * so only the needed ones are done. */
@@ -87,20 +118,25 @@ static float *project_pairs(const lk_model *m, const featset *fs, const lk_pair 
         if (b >= 0)
             need[b] = 1;
     }
-    for (size_t i = 0; i < fs->n; i++) {
-        if (!fs->ok[i] || !need[i])
-            continue;
-        if (lk_model_project(m, fs->x + i * fs->dim, tmp, err) != LK_OK) {
+    free(tmp);
+    proj_job jobs[2];
+    pthread_t tid;
+    for (int t = 0; t < 2; t++)
+        jobs[t] = (proj_job){m, fs, need, z, k, (size_t)t, 2, LK_OK, {0}};
+    int started = pthread_create(&tid, NULL, proj_worker, &jobs[1]) == 0;
+    if (!started)
+        jobs[0].step = 1;
+    proj_worker(&jobs[0]);
+    if (started)
+        pthread_join(tid, NULL);
+    free(need);
+    for (int t = 0; t < 2; t++)
+        if (jobs[t].rc != LK_OK) {
+            if (err)
+                *err = jobs[t].err;
             free(z);
-            free(tmp);
-            free(need);
             return NULL;
         }
-        for (size_t j = 0; j < k; j++)
-            z[i * k + j] = (float)tmp[j];
-    }
-    free(tmp);
-    free(need);
     *k_out = k;
     return z;
 }
@@ -131,6 +167,45 @@ static int cmp_size(const void *a, const void *b)
     return (x > y) - (x < y);
 }
 
+typedef struct wproj_job {
+    const featset *fs;
+    const size_t *rows;
+    size_t n;
+    const double *mean, *w;
+    size_t k, d;
+    float *z;
+    size_t first, step;
+} wproj_job;
+
+/* z_i = L2(w (x_i - mean)) for rows first, first + step, ... */
+static void *wproj_worker(void *arg)
+{
+    const wproj_job *j = arg;
+    const size_t k = j->k, d = j->d;
+    double *tmp = malloc(d * sizeof *tmp);
+    if (!tmp)
+        return NULL; /* the caller's z stays as calloc'd: WCCN of zeros fails loudly */
+    for (size_t i = j->first; i < j->n; i += j->step) {
+        const float *x = j->fs->x + j->rows[i] * d;
+        for (size_t c = 0; c < d; c++)
+            tmp[c] = x[c] - j->mean[c];
+        double nrm = 0;
+        for (size_t a = 0; a < k; a++) {
+            double acc = 0;
+            const double *restrict wr = j->w + a * d;
+            for (size_t c = 0; c < d; c++)
+                acc += wr[c] * tmp[c];
+            j->z[i * k + a] = (float)acc;
+            nrm += acc * acc;
+        }
+        nrm = nrm > 0 ? 1.0 / sqrt(nrm) : 0;
+        for (size_t a = 0; a < k; a++)
+            j->z[i * k + a] = (float)(j->z[i * k + a] * nrm);
+    }
+    free(tmp);
+    return NULL;
+}
+
 /* Within-class covariance normalisation in the L2-normalised whitened space,
  * folded into w: w <- S w with S = Sw^-1/2. Because L2(S L2(y)) = L2(S y),
  * one matrix and one final L2 normalisation reproduce the chain
@@ -140,7 +215,7 @@ static lk_code wccn_fold(const recipe *r, const featset *fs, const size_t *rows_
 {
     size_t *rows = malloc((n + 1) * sizeof *rows);
     int *labels = malloc((n + 1) * sizeof *labels);
-    float *z = malloc((n * k + 1) * sizeof *z);
+    float *z = calloc(n * k + 1, sizeof *z);
     double *s = malloc(k * k * sizeof *s), *tmp = malloc(d * sizeof *tmp);
     double *nw = malloc(k * d * sizeof *nw);
     lk_code rc = LK_OK;
@@ -152,22 +227,16 @@ static lk_code wccn_fold(const recipe *r, const featset *fs, const size_t *rows_
     qsort(rows, n, sizeof *rows, cmp_size);
     identity_labels(fs, rows, n, labels);
     fprintf(stderr, "train: WCCN on %zu images\n", n);
-    for (size_t i = 0; i < n; i++) {
-        const float *x = fs->x + rows[i] * d;
-        for (size_t j = 0; j < d; j++)
-            tmp[j] = x[j] - mean[j];
-        double nrm = 0;
-        for (size_t a = 0; a < k; a++) {
-            double acc = 0;
-            const double *wr = w + a * d;
-            for (size_t j = 0; j < d; j++)
-                acc += wr[j] * tmp[j];
-            z[i * k + a] = (float)acc;
-            nrm += acc * acc;
-        }
-        nrm = nrm > 0 ? 1.0 / sqrt(nrm) : 0;
-        for (size_t a = 0; a < k; a++)
-            z[i * k + a] = (float)(z[i * k + a] * nrm);
+    {
+        wproj_job jobs[2] = {{fs, rows, n, mean, w, k, d, z, 0, 2},
+                             {fs, rows, n, mean, w, k, d, z, 1, 2}};
+        pthread_t tid;
+        int started = pthread_create(&tid, NULL, wproj_worker, &jobs[1]) == 0;
+        if (!started)
+            jobs[0].step = 1;
+        wproj_worker(&jobs[0]);
+        if (started)
+            pthread_join(tid, NULL);
     }
     rc = lk_wccn_fit(z, labels, n, k, r->wccn_reg, s, err);
     if (rc != LK_OK)

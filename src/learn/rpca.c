@@ -45,10 +45,10 @@ static void *x_times(void *arg)
         for (size_t i = i0; i < i1; i++)
             memset(j->out + i * l, 0, l * sizeof(float));
         for (size_t c = 0; c < d; c++) {
-            const float *wr = j->w + c * l;
+            const float *restrict wr = j->w + c * l;
             for (size_t i = i0; i < i1; i++) {
                 const float a = j->x[i * d + c];
-                float *o = j->out + i * l;
+                float *restrict o = j->out + i * l;
                 for (size_t t = 0; t < l; t++)
                     o[t] += a * wr[t];
             }
@@ -67,10 +67,10 @@ static void *xt_times(void *arg)
     for (size_t i0 = 0; i0 < j->n; i0 += ROW_BLOCK) {
         size_t i1 = i0 + ROW_BLOCK < j->n ? i0 + ROW_BLOCK : j->n;
         for (size_t c = j->lo; c < j->hi; c++) {
-            float *o = j->out + c * l;
+            float *restrict o = j->out + c * l;
             for (size_t i = i0; i < i1; i++) {
                 const float a = j->x[i * d + c];
-                const float *q = j->w + i * l;
+                const float *restrict q = j->w + i * l;
                 for (size_t t = 0; t < l; t++)
                     o[t] += a * q[t];
             }

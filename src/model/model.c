@@ -902,7 +902,7 @@ lk_code lk_model_operating_point_for_fmr(const lk_model *m, double target_fmr,
 lk_code lk_model_threshold_for_fmr(const lk_model *m, double target_fmr, double *threshold,
                                    lk_error *err)
 {
-    lk_model_operating_point r;
+    lk_model_operating_point r = {0};
     lk_code c = lk_model_operating_point_for_fmr(m, target_fmr, &r, err);
     if (c)
         return c;
@@ -1458,7 +1458,7 @@ static lk_code parse_oppt(lk_model *m, rd *r, size_t sec_at, lk_error *err)
         return lk_error_set(err, LK_ERR_NOMEM, "out of memory reading operating points");
     for (uint32_t i = 0; i < n && !c; i++) {
         lk_model_operating_point *o = &rows[i];
-        double v[5];
+        double v[5] = {0};
         uint32_t flags;
         if ((c = rd_f64s(r, 5, "row", v, err)) ||
             (c = rd_u64(r, "impostor_comparisons", &o->impostor_comparisons, err)) ||
