@@ -311,17 +311,7 @@ int cmd_train(int argc, char **argv)
     if (ds) {
         /* Every image of the data set, so that the feature cache is shared
          * with `likeness lfw` on the same folder. */
-        size_t total = 0;
-        for (size_t i = 0; i < ds->count; i++)
-            total += ds->identities[i].n_paths;
-        paths = malloc((total + 1) * sizeof *paths);
-        if (!paths)
-            goto nomem;
-        size_t n = 0;
-        for (size_t i = 0; i < ds->count; i++)
-            for (size_t k = 0; k < ds->identities[i].n_paths; k++)
-                paths[n++] = ds->identities[i].paths[k];
-        if (featset_build(e, paths, n, (int)threads, cache, &fs, &err) != LK_OK)
+        if (featset_build_dataset(e, ds, (int)threads, cache, &fs, &err) != LK_OK)
             goto done;
     } else {
         size_t nt = train->count, nc = calib->count;
@@ -729,20 +719,8 @@ int cmd_lfw(int argc, char **argv)
         lk_error_set(&err, LK_ERR_DATA, "%s has %d folds; View 2 needs 10", pairs_file, ps->n_folds);
         goto fail;
     }
-    {
-        size_t total = 0;
-        for (size_t i = 0; i < ds->count; i++)
-            total += ds->identities[i].n_paths;
-        paths = malloc((total + 1) * sizeof *paths);
-        if (!paths)
-            goto nomem;
-        size_t n = 0;
-        for (size_t i = 0; i < ds->count; i++)
-            for (size_t k = 0; k < ds->identities[i].n_paths; k++)
-                paths[n++] = ds->identities[i].paths[k];
-        if (featset_build(e, paths, n, (int)threads, cache, &fs, &err) != LK_OK)
-            goto fail;
-    }
+    if (featset_build_dataset(e, ds, (int)threads, cache, &fs, &err) != LK_OK)
+        goto fail;
     test_v = malloc((ps->count + 1) * sizeof *test_v);
     test_y = malloc((ps->count + 1) * sizeof *test_y);
     if (!test_v || !test_y)

@@ -207,3 +207,21 @@ int featset_build(const lk_engine *e, const char *const *paths, size_t n, int th
         cache_write(cache_path, key, out);
     return LK_OK;
 }
+
+int featset_build_dataset(const lk_engine *e, const lk_dataset *ds, int threads,
+                          const char *cache_path, featset *out, lk_error *err)
+{
+    size_t total = 0;
+    for (size_t i = 0; i < ds->count; i++)
+        total += ds->identities[i].n_paths;
+    const char **paths = malloc((total + 1) * sizeof *paths);
+    if (!paths)
+        return lk_error_set(err, LK_ERR_NOMEM, "out of memory");
+    size_t n = 0;
+    for (size_t i = 0; i < ds->count; i++)
+        for (size_t k = 0; k < ds->identities[i].n_paths; k++)
+            paths[n++] = ds->identities[i].paths[k];
+    int rc = featset_build(e, paths, n, threads, cache_path, out, err);
+    free(paths);
+    return rc;
+}

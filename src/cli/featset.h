@@ -8,6 +8,7 @@
 #include <stdint.h>
 
 #include "likeness/engine.h"
+#include "likeness/learn.h"
 
 typedef struct featset {
     size_t n, dim;
@@ -22,6 +23,10 @@ typedef struct featset {
  * cores. cache_path may be NULL. Images that fail to decode get ok = 0. */
 int featset_build(const lk_engine *e, const char *const *paths, size_t n, int threads,
                   const char *cache_path, featset *out, lk_error *err);
+/* featset_build over every image of a folder-per-identity data set (so that
+ * commands reading the same folder share one feature cache). */
+int featset_build_dataset(const lk_engine *e, const lk_dataset *ds, int threads,
+                          const char *cache_path, featset *out, lk_error *err);
 /* Row of a path, or -1. */
 long featset_find(const featset *fs, const char *path);
 void featset_free(featset *fs);

@@ -9,6 +9,8 @@ import sys
 import tempfile
 
 import numpy as np
+
+from lkref import check, finish, rmat, wmat  # noqa: E402
 from scipy.stats import binomtest
 from sklearn.metrics import accuracy_score, roc_auc_score, roc_curve
 
@@ -18,28 +20,9 @@ if not os.access(TOOL, os.X_OK):
     print(f"SKIPPED: {TOOL} is not built (set LIKENESS_BIN)", file=sys.stderr)
     sys.exit(77)
 
-failures = 0
 
 
-def check(cond, msg):
-    global failures
-    if not cond:
-        failures += 1
-        print("FAIL:", msg)
-    else:
-        print("ok:", msg)
 
-
-def wmat(path, a):
-    a = np.atleast_2d(np.asarray(a, dtype="<f8"))
-    with open(path, "wb") as f:
-        f.write(np.array(a.shape, "<i8").tobytes() + a.tobytes())
-
-
-def rmat(path):
-    with open(path, "rb") as f:
-        r, c = np.frombuffer(f.read(16), "<i8")
-        return np.frombuffer(f.read(), "<f8").reshape(r, c)
 
 
 def reference_eer(fpr, fnr):
@@ -116,8 +99,7 @@ def main():
         # Tiny set with a tie across classes.
         run_case(tmp, "tiny", np.array([0.9, 0.5, 0.5, 0.1, 0.7, 0.3]),
                  np.array([1, 1, 0, 0, 0, 1], dtype=float))
-    print(f"{failures} failed")
-    sys.exit(1 if failures else 0)
+    sys.exit(finish())
 
 
 if __name__ == "__main__":

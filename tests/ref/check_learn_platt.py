@@ -12,6 +12,8 @@ import sys
 import tempfile
 
 import numpy as np
+
+from lkref import check, finish, rmat, wmat  # noqa: E402
 from scipy.optimize import minimize
 from scipy.special import expit, xlogy
 from sklearn.calibration import _sigmoid_calibration
@@ -22,28 +24,9 @@ if not os.access(TOOL, os.X_OK):
     print(f"SKIPPED: {TOOL} is not built (set LIKENESS_BIN)", file=sys.stderr)
     sys.exit(77)
 
-failures = 0
 
 
-def check(cond, msg):
-    global failures
-    if not cond:
-        failures += 1
-        print("FAIL:", msg)
-    else:
-        print("ok:", msg)
 
-
-def wmat(path, a):
-    a = np.atleast_2d(np.asarray(a, dtype="<f8"))
-    with open(path, "wb") as f:
-        f.write(np.array(a.shape, "<i8").tobytes() + a.tobytes())
-
-
-def rmat(path):
-    with open(path, "rb") as f:
-        r, c = np.frombuffer(f.read(16), "<i8")
-        return np.frombuffer(f.read(), "<f8").reshape(r, c)
 
 
 def tight_reference(f, y, ab0):
@@ -93,8 +76,7 @@ def main():
             ta, tb = abs(A - ra) / abs(ra), abs(B - rb) / max(abs(rb), 1e-3)
             check(ta < 1e-6 and tb < 1e-6,
                   f"{name}: vs tight BFGS A={ra:.10f} B={rb:.10f} (relative diff {ta:.2e}, {tb:.2e})")
-    print(f"{failures} failed")
-    sys.exit(1 if failures else 0)
+    sys.exit(finish())
 
 
 if __name__ == "__main__":

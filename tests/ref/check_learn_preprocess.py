@@ -12,6 +12,8 @@ import sys
 import tempfile
 
 import numpy as np
+
+from lkref import check, finish, rmat, wmat  # noqa: E402
 from sklearn.decomposition import PCA
 from sklearn.preprocessing import StandardScaler
 
@@ -27,28 +29,9 @@ if not os.path.exists(SUBSET):
     print(f"SKIPPED: {SUBSET} is missing (set LIKENESS_SHARED)", file=sys.stderr)
     sys.exit(77)
 
-failures = 0
 
 
-def check(cond, msg):
-    global failures
-    if not cond:
-        failures += 1
-        print("FAIL:", msg)
-    else:
-        print("ok:", msg)
 
-
-def wmat(path, a):
-    a = np.atleast_2d(np.asarray(a, dtype="<f8"))
-    with open(path, "wb") as f:
-        f.write(np.array(a.shape, "<i8").tobytes() + a.tobytes())
-
-
-def rmat(path):
-    with open(path, "rb") as f:
-        r, c = np.frombuffer(f.read(16), "<i8")
-        return np.frombuffer(f.read(), "<f8").reshape(r, c)
 
 
 def as_f32(a):
@@ -189,8 +172,7 @@ def main():
         else:
             print("SKIPPED part: LFW images missing; the larger covariance fit was not checked",
                   file=sys.stderr)
-    print(f"{failures} failed")
-    sys.exit(1 if failures else 0)
+    sys.exit(finish())
 
 
 if __name__ == "__main__":

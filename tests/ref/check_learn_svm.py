@@ -30,6 +30,8 @@ import time
 
 import numpy as np
 
+from lkref import check, finish, rmat, wmat  # noqa: E402
+
 BIN = os.environ.get("LIKENESS_BIN", "")
 SHARED = os.environ.get("LIKENESS_SHARED", "")
 TOOL = os.path.join(BIN, "lkt_learn_ref")
@@ -48,28 +50,9 @@ from sklearn.calibration import _sigmoid_calibration  # noqa: E402
 from sklearn.preprocessing import StandardScaler  # noqa: E402
 from sklearn.svm import LinearSVC  # noqa: E402
 
-failures = 0
 
 
-def check(cond, msg):
-    global failures
-    if not cond:
-        failures += 1
-        print("FAIL:", msg)
-    else:
-        print("ok:", msg)
 
-
-def wmat(path, a):
-    a = np.atleast_2d(np.asarray(a, dtype="<f8"))
-    with open(path, "wb") as f:
-        f.write(np.array(a.shape, "<i8").tobytes() + a.tobytes())
-
-
-def rmat(path):
-    with open(path, "rb") as f:
-        r, c = np.frombuffer(f.read(16), "<i8")
-        return np.frombuffer(f.read(), "<f8").reshape(r, c)
 
 
 def read_pairs(path):
@@ -190,8 +173,7 @@ def main():
                 da, db = abs(A - sa) / abs(sa), abs(B - sb) / max(abs(sb), 1e-3)
                 check(da < 1e-4 and db < 1e-4, f"Platt on held-out SVM outputs: A={A:.7f} B={B:.7f} "
                       f"vs sklearn {sa:.7f} {sb:.7f} (relative diff {da:.1e}, {db:.1e})")
-    print(f"{failures} failed")
-    sys.exit(1 if failures else 0)
+    sys.exit(finish())
 
 
 if __name__ == "__main__":
