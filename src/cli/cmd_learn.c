@@ -408,6 +408,8 @@ static void evaluate_usage(FILE *f)
             "  --model FILE      model (default: $LIKENESS_MODEL, else %s)\n"
             "  --json FILE       write the measures as JSON (default: standard output)\n"
             "  --report FILE     write the self-contained HTML report\n"
+            "  --scores FILE     write every pair's scores as CSV (path_a,path_b,mated,\n"
+            "                    svm_value,score); unusable pairs have empty scores\n"
             "  --fmr F           operating point for the accuracy row (default: the model's)\n"
             "  --threads N       feature extraction threads (default: all cores)\n"
             "  --cache FILE      keep extracted features in FILE and reuse them\n"
@@ -423,12 +425,14 @@ int cmd_evaluate(int argc, char **argv)
                                          {"model", required_argument, 0, 'm'},
                                          {"json", required_argument, 0, 'j'},
                                          {"report", required_argument, 0, 'r'},
+                                         {"scores", required_argument, 0, 's'},
                                          {"fmr", required_argument, 0, 'f'},
                                          {"threads", required_argument, 0, 't'},
                                          {"cache", required_argument, 0, 'c'},
                                          {"center-fallback", no_argument, 0, 'F'},
                                          {"help", no_argument, 0, 'h'},
                                          {0, 0, 0, 0}};
+    const char *scores_path = NULL;
     const char *pairs_file = NULL, *root = NULL, *model_path = cli_default_model();
     const char *json_path = NULL, *report_path = NULL, *cache = NULL;
     double fmr = 0;
@@ -443,6 +447,7 @@ int cmd_evaluate(int argc, char **argv)
         case 'm': model_path = optarg; break;
         case 'j': json_path = optarg; break;
         case 'r': report_path = optarg; break;
+        case 's': scores_path = optarg; break;
         case 'f': bad = parse_double(optarg, &fmr) || !(fmr > 0 && fmr < 1); break;
         case 't': bad = parse_size(optarg, &threads); break;
         case 'c': cache = optarg; break;
@@ -493,6 +498,24 @@ int cmd_evaluate(int argc, char **argv)
     measures me;
     if (compute_measures(v, y, ps->count, &me, &roc, &err) != 0)
         goto done;
+    if (scores_path) {
+        FILE *f = fopen(scores_path, "w");
+        int ok = f != NULL && fputs("path_a,path_b,mated,svm_value,score\n", f) >= 0;
+        for (size_t i = 0; ok && i < ps->count; i++) {
+            const lk_pair *pp = &ps->pairs[i];
+            if (isfinite(v[i]))
+                ok = fprintf(f, "%s,%s,%d,%.17g,%.17g\n", pp->path_a, pp->path_b, y[i], v[i],
+                             lk_model_probability(m, v[i])) > 0;
+            else
+                ok = fprintf(f, "%s,%s,%d,,\n", pp->path_a, pp->path_b, y[i]) > 0;
+        }
+        if (f && fclose(f) != 0)
+            ok = 0;
+        if (!ok) {
+            lk_error_set(&err, LK_ERR_IO, "cannot write %s", scores_path);
+            goto done;
+        }
+    }
     if (!(fmr > 0))
         fmr = lk_model_default_fmr(m);
     lk_model_operating_point op;

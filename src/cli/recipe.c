@@ -68,7 +68,7 @@ typedef struct proj_job {
     const lk_model *m;
     const featset *fs;
     const uint8_t *need;
-    float *z;
+    double *z;
     size_t k, first, step;
     lk_code rc;
     lk_error err;
@@ -88,7 +88,7 @@ static void *proj_worker(void *arg)
             continue;
         j->rc = lk_model_project(j->m, j->fs->x + i * j->fs->dim, tmp, &j->err);
         for (size_t c = 0; c < j->k && j->rc == LK_OK; c++)
-            j->z[i * j->k + c] = (float)tmp[c];
+            j->z[i * j->k + c] = tmp[c];
     }
     free(tmp);
     return NULL;
@@ -97,11 +97,11 @@ static void *proj_worker(void *arg)
 /* Projects, through m, the images with features that the pairs use (k
  * values each; other rows are left unset): projecting is k*d work per image,
  * so only the needed ones are done. */
-static float *project_pairs(const lk_model *m, const featset *fs, const lk_pair *pairs,
+static double *project_pairs(const lk_model *m, const featset *fs, const lk_pair *pairs,
                             size_t n_pairs, size_t *k_out, lk_error *err)
 {
     size_t k = lk_model_pair_dim(m);
-    float *z = malloc((fs->n * k + 1) * sizeof *z);
+    double *z = malloc((fs->n * k + 1) * sizeof *z);
     double *tmp = malloc((k + 1) * sizeof *tmp);
     uint8_t *need = calloc(fs->n + 1, 1);
     if (!z || !tmp || !need) {
@@ -352,7 +352,7 @@ int recipe_fit(const recipe *r, const char *feature_config, const featset *fs,
             return -1;
     }
     size_t k;
-    float *z = project_pairs(m, fs, pairs, n_pairs, &k, err);
+    double *z = project_pairs(m, fs, pairs, n_pairs, &k, err);
     if (!z)
         return -1;
     float *px = malloc((n_pairs * k + 1) * sizeof *px);
@@ -369,7 +369,10 @@ int recipe_fit(const recipe *r, const char *feature_config, const featset *fs,
         long a = featset_find(fs, pairs[i].path_a), b = featset_find(fs, pairs[i].path_b);
         if (a < 0 || b < 0 || !fs->ok[a] || !fs->ok[b])
             continue;
-        lk_pair_vector(z + (size_t)a * k, z + (size_t)b * k, k, px + np * k);
+        for (size_t c = 0; c < k; c++) {
+            double t = z[(size_t)a * k + c] - z[(size_t)b * k + c];
+            px[np * k + c] = (float)(t * t);
+        }
         y[np++] = pairs[i].genuine ? 1 : -1;
     }
     free(z);
@@ -398,8 +401,33 @@ int recipe_fit(const recipe *r, const char *feature_config, const featset *fs,
 int recipe_score(const lk_model *m, const featset *fs, const lk_pair *pairs, size_t n_pairs,
                  double *values, int *labels, size_t *missing, lk_error *err)
 {
+    if (lk_model_standardisation(m, NULL, NULL, NULL)) {
+        /* Not a model this recipe makes: score pair by pair with the full
+         * formula of docs/model-format.md. */
+        double *scratch = malloc((lk_model_scratch_size(m) + 1) * sizeof *scratch);
+        if (!scratch) {
+            lk_error_set(err, LK_ERR_NOMEM, "out of memory");
+            return -1;
+        }
+        size_t miss = 0;
+        for (size_t i = 0; i < n_pairs; i++) {
+            long ia = featset_find(fs, pairs[i].path_a), ib = featset_find(fs, pairs[i].path_b);
+            labels[i] = pairs[i].genuine ? 1 : 0;
+            values[i] = -INFINITY;
+            if (ia < 0 || ib < 0 || !fs->ok[ia] || !fs->ok[ib] ||
+                lk_model_score(m, fs->x + (size_t)ia * fs->dim, fs->x + (size_t)ib * fs->dim,
+                               scratch, &values[i], NULL, err) != LK_OK) {
+                values[i] = -INFINITY;
+                miss++;
+            }
+        }
+        free(scratch);
+        if (missing)
+            *missing = miss;
+        return 0;
+    }
     size_t k;
-    float *z = project_pairs(m, fs, pairs, n_pairs, &k, err);
+    double *z = project_pairs(m, fs, pairs, n_pairs, &k, err);
     if (!z)
         return -1;
     size_t nw;
@@ -417,10 +445,10 @@ int recipe_score(const lk_model *m, const featset *fs, const lk_pair *pairs, siz
         }
         /* f = b + sum_i w_i (y_a,i - y_b,i)^2: the model's scoring formula
          * without standardisation (docs/model-format.md). */
-        const float *za = z + (size_t)ia * k, *zb = z + (size_t)ib * k;
+        const double *za = z + (size_t)ia * k, *zb = z + (size_t)ib * k;
         double f = b;
         for (size_t j = 0; j < k; j++) {
-            double t = (double)za[j] - zb[j];
+            double t = za[j] - zb[j];
             f += w[j] * t * t;
         }
         values[i] = f;
