@@ -211,9 +211,12 @@ static size_t hog_dim(const lk_feature_config *c)
 int main(void)
 {
     lk_feature_config d = lk_feature_config_default();
-    /* 96x112, 8-px cells, 2x2 blocks: 11 x 13 blocks of 36; two radii of
-     * 8x8 regions of 59 labels. */
-    check_config(&d, 11u * 13u * 36u + 2u * 64u * 59u);
+    /* The dimension from the formulas (HOG: Dalal & Triggs 2005 blocks;
+     * LBP: P(P-1)+3 labels per region, Ojala et al. 2002), for whatever the
+     * default configuration is. */
+    const size_t lbp_labels = (size_t)(d.lbp_points * (d.lbp_points - 1) + 3);
+    const size_t lbp_dim = (size_t)d.lbp_n_radii * (size_t)(d.lbp_grid_x * d.lbp_grid_y) * lbp_labels;
+    check_config(&d, hog_dim(&d) + lbp_dim);
     check_roundtrip(&d);
 
     lk_feature_config c = d;
@@ -245,11 +248,12 @@ int main(void)
 
     lk_feature_config l = d;
     l.hog_on = 0;
-    check_config(&l, 2u * 64u * 59u);
+    check_config(&l, lbp_dim);
     check_roundtrip(&l);
 
     lk_feature_config bad = d;
     bad.hog_tan_triggs = 1; /* with transform_sqrt on: refused */
+    bad.hog.transform_sqrt = 1;
     lk_error err;
     CHECK(lk_extractor_new(&bad, &err) == NULL && err.code == LK_ERR_INVALID_ARGUMENT,
           "sqrt of a signed image accepted");
