@@ -160,8 +160,16 @@ static int write_report(const char *path, const char *title, const char *subtitl
     return rc;
 }
 
+/* Writes j to path, or prints it to standard output when path is NULL. */
 static int write_json_file(const char *path, cJSON *j)
 {
+    if (!path) {
+        char *s = cJSON_Print(j);
+        if (s)
+            puts(s);
+        free(s);
+        return s ? 0 : -1;
+    }
     char *s = cJSON_Print(j);
     FILE *f = path ? fopen(path, "w") : NULL;
     int ok = s && f && fputs(s, f) >= 0 && fputc('\n', f) != EOF;
@@ -531,15 +539,8 @@ int cmd_evaluate(int argc, char **argv)
     cJSON_AddNumberToObject(j, "target_fmr", op.target_fmr);
     cJSON_AddNumberToObject(j, "threshold", op.prob_threshold);
     cJSON_AddNumberToObject(j, "accuracy_at_threshold", acc);
-    if (json_path) {
-        if (write_json_file(json_path, j) != 0)
-            goto done_quiet;
-    } else {
-        char *s = cJSON_Print(j);
-        if (s)
-            puts(s);
-        free(s);
-    }
+    if (write_json_file(json_path, j) != 0)
+        goto done_quiet;
     if (report_path) {
         report_summary_row rows[8] = {{"pairs scored", ""}, {"AUC", ""}, {"EER", ""}, {"FNMR at FMR 1%", ""},
                                       {"FNMR at FMR 0.1%", ""}, {"accuracy at the operating point", ""},
@@ -886,15 +887,8 @@ int cmd_lfw(int argc, char **argv)
         cJSON_AddItemToObject(j, "per_fold", fold_json);
         fprintf(stderr, "lfw: View %d mean accuracy %.2f %% +- %.2f (standard error), mean EER "
                         "%.2f %%\n", view1 ? 1 : 2, 100 * mean, 100 * se, 100 * eer_mean);
-        if (json_path) {
-            if (write_json_file(json_path, j) != 0)
-                goto quiet;
-        } else {
-            char *s = cJSON_Print(j);
-            if (s)
-                puts(s);
-            free(s);
-        }
+        if (write_json_file(json_path, j) != 0)
+            goto quiet;
         if (report_path) {
             report_summary_row rows[6] = {{"mean accuracy (10 folds)", ""}, {"mean EER per fold", ""},
                                           {"pooled AUC", ""}, {"pooled FNMR at FMR 1%", ""},
