@@ -165,7 +165,7 @@ static void hist_svg(FILE *f, const report_input *in)
         top = 1;
     fprintf(f, "<svg viewBox='0 0 %d %d' width='%d' height='%d' role='img' "
                "aria-label='score histograms'>\n", PW, PH, PW, PH);
-    axes(f, "comparison score", "fraction of comparisons");
+    axes(f, "comparison score (SVM decision value, before calibration)", "fraction of comparisons");
     for (int k = 0; k <= 4; k++) {
         double v = lo + (hi - lo) * k / 4.0;
         fprintf(f, "<text x='%.1f' y='%d' text-anchor='middle' class='tick'>%.3g</text>\n",
