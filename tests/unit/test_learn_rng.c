@@ -21,7 +21,7 @@ int main(void)
     }
     /* splitmix64 from x = 0: first four outputs of Vigna's splitmix64.c
      * (0xe220a8397b1dcdaf ... ; recalled from memory, the same values appear
-     * in independent transcriptions); lk_rng_seed fills the state with them. */
+     * in independent copies of the published code); lk_rng_seed fills the state with them. */
     lk_rng_seed(&r, 0);
     CHECK(r.s[0] == 0xe220a8397b1dcdafULL && r.s[1] == 0x6e789e6aa1b965f4ULL &&
               r.s[2] == 0x06c45d188009454fULL && r.s[3] == 0xf88bb8a8724c81ecULL,
