@@ -106,8 +106,13 @@ lk_code lk_align_face(const lk_image *gray, const lk_eyes *eyes, const lk_align_
 
 /* ------------------------------------------------ detection + eyes ------ */
 
+#define LK_FIND_MAX_LISTED 32
+
 typedef struct lk_face_find {
     int face_count;          /* faces found (at the search angle that found any) */
+    int listed;              /* boxes in faces[]: min(face_count, LK_FIND_MAX_LISTED) */
+    lk_rect faces[LK_FIND_MAX_LISTED]; /* the first boxes in primary-rule order, in the
+                                          frame searched (faces[0] == primary) */
     lk_rect primary;         /* primary face box, in the frame searched (see search_angle_deg) */
     int second_width;        /* width of the largest other face, 0 if none */
     double search_angle_deg; /* 0, or the angle the image was rotated by (about its centre,

@@ -9,6 +9,7 @@
  * degrees was found this way. */
 #include <math.h>
 #include <stdlib.h>
+#include <string.h>
 
 #include "likeness/align.h"
 
@@ -40,6 +41,8 @@ static void fill(lk_face_find *out, const lk_rect *r, int count)
 {
     out->face_count = count;
     out->primary = r[0];
+    out->listed = count < LK_FIND_MAX_LISTED ? count : LK_FIND_MAX_LISTED;
+    memcpy(out->faces, r, (size_t)out->listed * sizeof *r);
     out->second_width = 0;
     for (int i = 1; i < count; i++)
         if (r[i].width > out->second_width)

@@ -111,34 +111,25 @@ int cmd_detect(int argc, char **argv)
         cli_error(&err);
         return CLI_FAIL;
     }
-    lk_cascade *cascade = lk_cascade_load(cfg.face_cascade, &err);
-    if (!cascade) {
-        cli_error(&err);
-        lk_engine_free(e);
-        return CLI_FAIL;
-    }
     int status = CLI_OK;
     for (int i = optind; i < argc; i++) {
-        lk_image *img = NULL, *crop = NULL, *gray = NULL;
-        lk_rect *rects = NULL;
-        int count = 0;
+        lk_image *img = NULL, *crop = NULL;
         lk_analysis a;
         cJSON *j = cJSON_CreateObject();
         cJSON_AddStringToObject(j, "image", argv[i]);
         lk_code rc = lk_image_load(argv[i], &cfg.limits, &img, &err);
         if (rc == LK_OK)
             rc = lk_engine_analyse_image(e, img, &a, NULL, &crop, &err);
-        if (rc == LK_OK) {
-            gray = lk_image_to_gray(img, LK_LUMA_BT601, &err);
-            rc = gray ? lk_detect(cascade, gray, &cfg.find.detect, &rects, &count, &err)
-                      : err.code;
-        }
         if (rc != LK_OK) {
             cJSON *er = cJSON_AddObjectToObject(j, "error");
             cJSON_AddStringToObject(er, "type", lk_code_name(rc));
             cJSON_AddStringToObject(er, "detail", err.message);
             status = CLI_FAIL;
         } else {
+            /* The engine's own boxes; those of a rotated search are in the
+             * rotated frame, so only an upright search lists them. */
+            const lk_rect *rects = a.find.faces;
+            const int count = a.find.search_angle_deg == 0 ? a.find.listed : 0;
             cJSON *faces = cJSON_AddArrayToObject(j, "faces");
             for (int k = 0; k < count; k++) {
                 cJSON *b = cJSON_CreateObject();
@@ -180,12 +171,9 @@ int cmd_detect(int argc, char **argv)
             }
         }
         json_print(j);
-        free(rects);
-        lk_image_free(gray);
         lk_image_free(crop);
         lk_image_free(img);
     }
-    lk_cascade_free(cascade);
     lk_engine_free(e);
     return status;
 }

@@ -815,25 +815,38 @@ int cmd_lfw(int argc, char **argv)
         if (ok && recipe_fit(&r, lk_engine_feature_config(e), &fs, rows, n_rows, all_tr,
                              n_tr + n_gen, m, &used, &err) != 0)
             ok = 0;
-        /* Threshold: best accuracy on the training folds' protocol pairs. */
+        /* Threshold: best accuracy on the training folds' protocol pairs.
+         * Training and test pairs are scored in one call, so each image is
+         * projected once. */
         double thr = 0, tr_acc = 0;
+        const double *tv = NULL;
+        const int *ty = NULL;
         if (ok) {
+            lk_pair *both = malloc((n_tr + n_te + 1) * sizeof *both);
             v = malloc((n_tr + n_te + 1) * sizeof *v);
             y = malloc((n_tr + n_te + 1) * sizeof *y);
-            ok = v && y && recipe_score(m, &fs, tr, n_tr, v, y, &miss, &err) == 0 &&
-                 lk_best_accuracy_threshold(v, y, n_tr, &thr, &tr_acc, &err) == LK_OK;
+            ok = both && v && y;
+            if (ok) {
+                memcpy(both, tr, n_tr * sizeof *tr);
+                memcpy(both + n_tr, te, n_te * sizeof *te);
+                ok = recipe_score(m, &fs, both, n_tr + n_te, v, y, NULL, &err) == 0 &&
+                     lk_best_accuracy_threshold(v, y, n_tr, &thr, &tr_acc, &err) == LK_OK;
+            }
+            free(both);
+            tv = v + n_tr;
+            ty = y + n_tr;
+            for (size_t i = 0; ok && i < n_te; i++)
+                miss += !isfinite(tv[i]);
         }
-        if (ok && recipe_score(m, &fs, te, n_te, v, y, &miss, &err) != 0)
-            ok = 0;
         if (ok) {
-            acc[f] = lk_accuracy_at(v, y, n_te, thr);
+            acc[f] = lk_accuracy_at(tv, ty, n_te, thr);
             lk_roc fr = {0};
-            if (lk_roc_compute(v, y, n_te, &fr, &err) == LK_OK) {
+            if (lk_roc_compute(tv, ty, n_te, &fr, &err) == LK_OK) {
                 eer_fold[f] = lk_roc_eer(&fr, NULL);
                 lk_roc_free(&fr);
             }
-            memcpy(test_v + n_test, v, n_te * sizeof *v);
-            memcpy(test_y + n_test, y, n_te * sizeof *y);
+            memcpy(test_v + n_test, tv, n_te * sizeof *tv);
+            memcpy(test_y + n_test, ty, n_te * sizeof *ty);
             n_test += n_te;
             fprintf(stderr, "lfw: fold %zu: accuracy %.2f %% (training folds %.2f %%), EER "
                             "%.2f %%, %.0f s\n", f + 1, 100 * acc[f], 100 * tr_acc,

@@ -100,9 +100,7 @@ lk_code lk_engine_analyse_image(const lk_engine *e, const lk_image *img, lk_anal
                                 float *features, lk_image **crop_out, lk_error *err)
 {
     double t0 = now_ms();
-    double decode_ms = out->stage_ms[LK_STAGE_DECODE];
     memset(out, 0, sizeof *out);
-    out->stage_ms[LK_STAGE_DECODE] = decode_ms;
     out->width = img->width;
     out->height = img->height;
     if (crop_out)
@@ -178,8 +176,9 @@ lk_code lk_engine_analyse(const lk_engine *e, const uint8_t *bytes, size_t len,
     lk_code rc = lk_image_decode(bytes, len, &e->cfg.limits, &img, err);
     if (rc != LK_OK)
         return rc;
-    out->stage_ms[LK_STAGE_DECODE] = now_ms() - t0;
+    double decode_ms = now_ms() - t0;
     rc = lk_engine_analyse_image(e, img, out, features, crop_out, err);
+    out->stage_ms[LK_STAGE_DECODE] = decode_ms;
     lk_image_free(img);
     return rc;
 }

@@ -27,13 +27,10 @@ import tempfile
 import cv2
 import numpy as np
 
+from lkref import skip  # noqa: E402
+
 REASONS = ["no_face", "multiple_faces", "face_too_small", "too_blurry", "badly_exposed",
            "too_rotated"]
-
-
-def skip(msg):
-    print("SKIPPED: " + msg, file=sys.stderr)
-    sys.exit(77)
 
 
 def main():

@@ -16,12 +16,13 @@ Input: central crops of 8 LFW deep-funneled images (seeded), gray from
 Pillow's convert('L'), as v/255 doubles on both sides.
 """
 import os
-import random
 import subprocess
 import sys
 import tempfile
 
 import numpy as np
+
+from lkref import lfw_sample  # noqa: E402
 
 try:
     from PIL import Image
@@ -50,9 +51,7 @@ def main():
     if not os.access(TOOL, os.X_OK):
         print(f"FAIL: tool {TOOL} not built", file=sys.stderr)
         return 1
-    files = sorted(os.path.join(d, f) for d, _, fs in os.walk(LFW) for f in fs
-                   if f.endswith(".jpg"))
-    picks = random.Random(SEED).sample(files, N_IMAGES)
+    picks = lfw_sample(LFW, SEED, N_IMAGES)
     worst_hog = {s: 0.0 for s in HOG_SETS}
     worst_blur = {s: 0.0 for s in SIGMAS}
     with tempfile.TemporaryDirectory() as tmp:

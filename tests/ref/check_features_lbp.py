@@ -10,12 +10,13 @@ every region histogram (Ahonen et al. 2006 region split, unit sum) within
 1e-3 in L1 distance of the one made from skimage's codes.
 """
 import os
-import random
 import subprocess
 import sys
 import tempfile
 
 import numpy as np
+
+from lkref import lfw_sample  # noqa: E402
 
 try:
     from PIL import Image
@@ -53,9 +54,7 @@ def main():
     if not os.access(TOOL, os.X_OK):
         print(f"FAIL: tool {TOOL} not built", file=sys.stderr)
         return 1
-    files = sorted(os.path.join(d, f) for d, _, fs in os.walk(LFW) for f in fs
-                   if f.endswith(".jpg"))
-    picks = random.Random(SEED).sample(files, N_IMAGES)
+    picks = lfw_sample(LFW, SEED, N_IMAGES)
     failures = tiny_failures = 0
     with tempfile.TemporaryDirectory() as tmp:
         stats = {c: [0, 0, 0.0] for c in CONFIGS}  # equal, total, worst hist L1

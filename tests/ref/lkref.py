@@ -32,3 +32,20 @@ def rmat(path):
     with open(path, "rb") as f:
         r, c = np.frombuffer(f.read(16), "<i8")
         return np.frombuffer(f.read(), "<f8").reshape(r, c)
+
+
+def skip(msg):
+    """Exits with CTest's skip code, saying what is missing."""
+    import sys
+    print("SKIPPED: " + msg, file=sys.stderr)
+    sys.exit(77)
+
+
+def lfw_sample(root, seed, n):
+    """A seeded choice of n LFW image paths under root (all .jpg, sorted first,
+    so the choice does not depend on the file system's listing order)."""
+    import os
+    import random
+    files = sorted(os.path.join(d, f) for d, _, fs in os.walk(root) for f in fs
+                   if f.endswith(".jpg"))
+    return random.Random(seed).sample(files, n)
