@@ -7,10 +7,17 @@ PKGS=(
   build-essential cmake pkg-config git
   libturbojpeg0-dev libpng-dev libexif-dev libxml2-dev
   libcjson-dev libsodium-dev libssl-dev libsqlite3-dev libinih-dev libmicrohttpd-dev
+  libgnutls28-dev
   opencv-data
-  python3 python3-numpy python3-pil python3-skimage python3-sklearn python3-opencv
-  valgrind
+  openssl curl ca-certificates
+  python3 python3-numpy python3-pil python3-skimage python3-sklearn python3-opencv python3-nacl
+  valgrind wrk
 )
+# Node.js and npm run the API-spec lint and schema validation (tests/api);
+# Debian's packages only if the machine has no node of its own.
+if ! command -v npm >/dev/null; then
+  PKGS+=(nodejs npm)
+fi
 
 missing=()
 for p in "${PKGS[@]}"; do

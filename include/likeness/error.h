@@ -28,6 +28,14 @@ typedef enum lk_code {
     LK_ERR_MODEL_MISMATCH,    /* features were made with another configuration than the model's */
     LK_ERR_DATA,              /* a data set or pairs file is malformed or incomplete */
     LK_ERR_INTERNAL,          /* a bug: an invariant did not hold */
+    LK_ERR_NOT_FOUND,         /* a template, key or record does not exist */
+    LK_ERR_TEMPLATE_INVALID,  /* a template record failed authentication or is malformed */
+    LK_ERR_TEMPLATE_MISMATCH, /* a template was made with another model or feature configuration */
+    LK_ERR_KEY,               /* a key file is missing, unsafe (mode), malformed, or lacks a key id */
+    LK_ERR_STORE,             /* the database refused or failed an operation */
+    LK_ERR_AUDIT,             /* the audit chain does not verify */
+    LK_ERR_CONFIG,            /* a configuration file or override is invalid */
+    LK_ERR_BUSY,              /* a resource is temporarily unavailable; retry later */
     LK_CODE_COUNT
 } lk_code;
 

@@ -190,6 +190,13 @@ lk_code lk_model_pair_vector(const lk_model *m, const float *feat_a, const float
 lk_code lk_model_score(const lk_model *m, const float *feat_a, const float *feat_b,
                        double *scratch, double *svm_value, double *probability, lk_error *err);
 
+/* Scores two vectors already projected with lk_model_project (k values
+ * each, or d without a projection), e.g. a stored template and a probe.
+ * For a model with L2 projection normalisation (or none) this equals
+ * lk_model_score on the original feature vectors, bit for bit. */
+lk_code lk_model_score_projected(const lk_model *m, const double *ya, const double *yb,
+                                 double *svm_value, double *probability, lk_error *err);
+
 /* Platt sigmoid of an SVM value, computed without overflow. */
 double lk_model_probability(const lk_model *m, double svm_value);
 

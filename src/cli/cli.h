@@ -22,6 +22,8 @@ int cmd_verify(int argc, char **argv);
 int cmd_train(int argc, char **argv);
 int cmd_evaluate(int argc, char **argv);
 int cmd_lfw(int argc, char **argv);
+int cmd_keys(int argc, char **argv);
+int cmd_audit(int argc, char **argv);
 
 /* Prints "likeness: <message>" (and the error code name) to stderr. */
 void cli_error(const lk_error *err);

@@ -140,8 +140,8 @@ int cmd_detect(int argc, char **argv)
                 cJSON_AddNumberToObject(b, "neighbors", rects[k].neighbors);
                 cJSON_AddItemToArray(faces, b);
             }
-            cJSON_AddItemToObject(j, "quality", json_quality(&a));
-            cJSON_AddItemToObject(j, "timings", json_timings(&a));
+            cJSON_AddItemToObject(j, "quality", lk_server_quality_json(&a));
+            cJSON_AddItemToObject(j, "timings", lk_server_timings_json(&a));
             if (draw) {
                 lk_image *ov = to_rgb(img);
                 static const uint8_t orange[3] = {255, 140, 0}, green[3] = {0, 220, 60},
@@ -255,7 +255,7 @@ int cmd_features(int argc, char **argv)
             cJSON_AddNumberToObject(j, "dimension", (double)dim);
             if (out)
                 cJSON_AddStringToObject(j, "output", out);
-            cJSON_AddItemToObject(j, "quality", json_quality(&a));
+            cJSON_AddItemToObject(j, "quality", lk_server_quality_json(&a));
             json_print(j);
         }
     }

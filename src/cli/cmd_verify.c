@@ -88,7 +88,7 @@ int cmd_verify(int argc, char **argv)
     lk_analysis a[2];
     cJSON *j = cJSON_CreateObject();
     char id[37];
-    uuid_v4(id);
+    lk_uuid_v4(id);
     cJSON_AddStringToObject(j, "decision_id", id);
     int status = CLI_OK;
     cJSON *quality = cJSON_CreateObject();
@@ -108,7 +108,7 @@ int cmd_verify(int argc, char **argv)
             status = CLI_FAIL;
             break;
         }
-        cJSON_AddItemToObject(quality, role[k], json_quality(&a[k]));
+        cJSON_AddItemToObject(quality, role[k], lk_server_quality_json(&a[k]));
         if (!a[k].quality.usable || !a[k].has_features) {
             cJSON *er = cJSON_AddObjectToObject(j, "error");
             uint32_t first = a[k].quality.reasons & LK_QR_BLOCKING;
@@ -137,8 +137,8 @@ int cmd_verify(int argc, char **argv)
     cJSON_AddItemToObject(j, "quality", quality);
     if (status == CLI_OK) {
         cJSON *t = cJSON_AddObjectToObject(j, "timings");
-        cJSON_AddItemToObject(t, "probe", json_timings(&a[0]));
-        cJSON_AddItemToObject(t, "reference", json_timings(&a[1]));
+        cJSON_AddItemToObject(t, "probe", lk_server_timings_json(&a[0]));
+        cJSON_AddItemToObject(t, "reference", lk_server_timings_json(&a[1]));
     }
     json_print(j);
     free(feat[0]);

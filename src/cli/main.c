@@ -15,6 +15,8 @@ static const cli_command commands[] = {
     {"evaluate", "score pairs with a model: JSON measures and an HTML report with ROC/DET curves",
      cmd_evaluate},
     {"lfw", "run the LFW View 2 ten-fold protocol end to end and report accuracy", cmd_lfw},
+    {"keys", "create and rotate master keys; create, list and revoke API keys", cmd_keys},
+    {"audit", "verify the audit chain, or export it as JSON Lines", cmd_audit},
 };
 
 static void usage(FILE *f)

@@ -40,6 +40,14 @@ const char *lk_code_name(lk_code code)
         [LK_ERR_MODEL_MISMATCH] = "model_mismatch",
         [LK_ERR_DATA] = "data_error",
         [LK_ERR_INTERNAL] = "internal_error",
+        [LK_ERR_NOT_FOUND] = "not_found",
+        [LK_ERR_TEMPLATE_INVALID] = "template_invalid",
+        [LK_ERR_TEMPLATE_MISMATCH] = "template_mismatch",
+        [LK_ERR_KEY] = "key_error",
+        [LK_ERR_STORE] = "store_error",
+        [LK_ERR_AUDIT] = "audit_error",
+        [LK_ERR_CONFIG] = "config_error",
+        [LK_ERR_BUSY] = "busy",
     };
     if ((int)code < 0 || code >= LK_CODE_COUNT || !names[code])
         return "unknown";

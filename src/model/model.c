@@ -879,6 +879,36 @@ lk_code lk_model_score(const lk_model *m, const float *feat_a, const float *feat
     return LK_OK;
 }
 
+lk_code lk_model_score_projected(const lk_model *m, const double *ya, const double *yb,
+                                 double *svm_value, double *probability, lk_error *err)
+{
+    lk_code c = validate_score_part(m, err);
+    if (c)
+        return c;
+    if (!ya || !yb)
+        return lk_error_set(err, LK_ERR_INVALID_ARGUMENT, "scoring needs two projected vectors");
+    /* The same arithmetic as lk_model_pair_vector and lk_model_score, term
+     * by term, so an image scored against the projection of another image
+     * gets exactly the score of the two images. */
+    const size_t n = lk_model_pair_dim(m);
+    double f = m->svm_b;
+    for (size_t i = 0; i < n; i++) {
+        double t = ya[i] - yb[i];
+        double z = t * t;
+        if (m->has_std)
+            z = (z - m->std_mean[i]) / m->std_scale[i];
+        f += m->svm_w[i] * z;
+    }
+    if (!isfinite(f))
+        return lk_error_set(err, LK_ERR_INVALID_ARGUMENT,
+                            "comparison score is not finite: a vector holds NaN or infinite values");
+    if (svm_value)
+        *svm_value = f;
+    if (probability)
+        *probability = lk_model_probability(m, f);
+    return LK_OK;
+}
+
 lk_code lk_model_operating_point_for_fmr(const lk_model *m, double target_fmr,
                                          lk_model_operating_point *row, lk_error *err)
 {
