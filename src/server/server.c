@@ -225,9 +225,10 @@ static void job_done(srv_request *r)
 {
     /* Called on a worker thread: wake the connection; the access handler
      * then queues r->out. */
+    lk_server *s = r->srv; /* r may be freed as soon as the connection resumes */
     atomic_store(&r->done, true);
     MHD_resume_connection(r->conn);
-    atomic_fetch_sub(&r->srv->inflight, 1);
+    atomic_fetch_sub(&s->inflight, 1);
 }
 
 static void run_job(void *job, void *state)
