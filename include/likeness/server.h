@@ -46,6 +46,9 @@ void lk_server_free(lk_server *s);
  * measures; and the per-stage timings. */
 cJSON *lk_server_quality_json(const lk_analysis *a);
 cJSON *lk_server_timings_json(const lk_analysis *a);
+/* Adds a number that prints as the shortest decimal reading back to exactly
+ * v (null if v is not finite). */
+cJSON *lk_json_add_number(cJSON *obj, const char *name, double v);
 /* A random RFC 9562 version 4 UUID (libsodium's CSPRNG). */
 void lk_uuid_v4(char out[37]);
 

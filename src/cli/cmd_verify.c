@@ -128,9 +128,9 @@ int cmd_verify(int argc, char **argv)
             status = CLI_FAIL;
         } else {
             cJSON_AddStringToObject(j, "decision", c.match ? "match" : "non_match");
-            cJSON_AddNumberToObject(j, "score", c.score);
-            cJSON_AddNumberToObject(j, "threshold", c.threshold);
-            cJSON_AddNumberToObject(j, "target_fmr", c.target_fmr);
+            lk_json_add_number(j, "score", c.score);
+            lk_json_add_number(j, "threshold", c.threshold);
+            lk_json_add_number(j, "target_fmr", c.target_fmr);
         }
     }
     cJSON_AddStringToObject(j, "model_id", lk_model_id(model));

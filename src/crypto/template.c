@@ -245,7 +245,7 @@ lk_code lk_template_open(const lk_keyring *kr, const lk_template_binding *b,
     lk_code c = check_binding(b, err);
     if (c != LK_OK)
         return c;
-    rec_header h;
+    rec_header h = {0};
     if ((c = parse_header(record, len, &h, err)) != LK_OK)
         return c;
     if (memcmp(h.template_id, b->template_id, 32) != 0)
@@ -296,7 +296,7 @@ lk_code lk_template_open(const lk_keyring *kr, const lk_template_binding *b,
 lk_code lk_template_record_key_id(const uint8_t *record, size_t len, char key_id[LK_KEY_ID_MAX],
                                   lk_error *err)
 {
-    rec_header h;
+    rec_header h = {0};
     lk_code c = parse_header(record, len, &h, err);
     if (c != LK_OK)
         return c;
@@ -316,7 +316,7 @@ lk_code lk_template_reseal(const lk_keyring *kr, const char *template_id, const 
     if (!lk_template_id_valid(template_id))
         return lk_error_set(err, LK_ERR_INVALID_ARGUMENT, "template id must be %d lowercase "
                             "hexadecimal characters", LK_TEMPLATE_ID_HEX);
-    rec_header h;
+    rec_header h = {0};
     lk_code c = parse_header(record, len, &h, err);
     if (c != LK_OK)
         return c;

@@ -10,6 +10,25 @@
 
 #include "handlers.h"
 
+/* ---- numbers ---- */
+
+cJSON *lk_json_add_number(cJSON *obj, const char *name, double v)
+{
+    /* cJSON prints 15 significant digits when they read back as "close" to
+     * the value, which can change the last bit; a score must print as the
+     * same double the audit log holds. The shortest of %.15g..%.17g that
+     * reads back exactly (17 always does: IEEE 754-2008 section 5.12.2). */
+    if (!isfinite(v))
+        return cJSON_AddNullToObject(obj, name);
+    char buf[40];
+    for (int digits = 15; digits <= 17; digits++) {
+        snprintf(buf, sizeof buf, "%.*g", digits, v);
+        if (strtod(buf, NULL) == v)
+            break;
+    }
+    return cJSON_AddRawToObject(obj, name, buf);
+}
+
 /* ---- problem types (RFC 9457) ---- */
 
 typedef struct problem_def {
@@ -156,9 +175,9 @@ void srv_problem(srv_request *r, const char *slug, const char *detail)
             secs = 1;
         snprintf(v, sizeof v, "%d", secs);
         srv_add_header(r, "Retry-After", v);
-        cJSON_AddNumberToObject(j, "retry_after", secs);
+        lk_json_add_number(j, "retry_after", secs);
     } else if (!strcmp(slug, "payload-too-large")) {
-        cJSON_AddNumberToObject(j, "limit_bytes", (double)r->srv->cfg.max_body_bytes);
+        lk_json_add_number(j, "limit_bytes", (double)r->srv->cfg.max_body_bytes);
     } else if (!strcmp(slug, "forbidden")) {
         unsigned need = 0;
         switch (r->route) {
@@ -430,33 +449,33 @@ cJSON *lk_server_quality_json(const lk_analysis *a)
     }
     if (a->center_fallback)
         cJSON_AddItemToArray(notes, cJSON_CreateString("center_fallback"));
-    cJSON_AddNumberToObject(o, "face_count", q->face_count);
+    lk_json_add_number(o, "face_count", q->face_count);
     if (a->find.face_count > 0 || a->center_fallback) {
         cJSON *box = cJSON_AddObjectToObject(o, "face");
         const lk_rect *b = &a->find.primary;
-        cJSON_AddNumberToObject(box, "x", b->x);
-        cJSON_AddNumberToObject(box, "y", b->y);
-        cJSON_AddNumberToObject(box, "width", b->width);
-        cJSON_AddNumberToObject(box, "height", b->height);
+        lk_json_add_number(box, "x", b->x);
+        lk_json_add_number(box, "y", b->y);
+        lk_json_add_number(box, "width", b->width);
+        lk_json_add_number(box, "height", b->height);
         if (a->find.search_angle_deg != 0)
-            cJSON_AddNumberToObject(box, "search_angle_deg", a->find.search_angle_deg);
+            lk_json_add_number(box, "search_angle_deg", a->find.search_angle_deg);
         cJSON *eyes = cJSON_AddObjectToObject(o, "eyes");
         cJSON *l = cJSON_AddObjectToObject(eyes, "left");
-        cJSON_AddNumberToObject(l, "x", a->find.eyes.left.x);
-        cJSON_AddNumberToObject(l, "y", a->find.eyes.left.y);
+        lk_json_add_number(l, "x", a->find.eyes.left.x);
+        lk_json_add_number(l, "y", a->find.eyes.left.y);
         cJSON *rr = cJSON_AddObjectToObject(eyes, "right");
-        cJSON_AddNumberToObject(rr, "x", a->find.eyes.right.x);
-        cJSON_AddNumberToObject(rr, "y", a->find.eyes.right.y);
+        lk_json_add_number(rr, "x", a->find.eyes.right.x);
+        lk_json_add_number(rr, "y", a->find.eyes.right.y);
         cJSON_AddBoolToObject(eyes, "estimated", a->find.eyes.eyes_estimated);
-        cJSON_AddNumberToObject(o, "face_size", q->face_size);
-        cJSON_AddNumberToObject(o, "eye_distance", q->eye_distance);
-        cJSON_AddNumberToObject(o, "roll_deg", q->roll_deg);
-        cJSON_AddNumberToObject(o, "sharpness", q->sharpness);
-        cJSON_AddNumberToObject(o, "mean_gray", q->mean_gray);
-        cJSON_AddNumberToObject(o, "clipped_fraction", q->clipped);
+        lk_json_add_number(o, "face_size", q->face_size);
+        lk_json_add_number(o, "eye_distance", q->eye_distance);
+        lk_json_add_number(o, "roll_deg", q->roll_deg);
+        lk_json_add_number(o, "sharpness", q->sharpness);
+        lk_json_add_number(o, "mean_gray", q->mean_gray);
+        lk_json_add_number(o, "clipped_fraction", q->clipped);
     }
-    cJSON_AddNumberToObject(o, "image_width", a->width);
-    cJSON_AddNumberToObject(o, "image_height", a->height);
+    lk_json_add_number(o, "image_width", a->width);
+    lk_json_add_number(o, "image_height", a->height);
     return o;
 }
 
@@ -466,7 +485,7 @@ cJSON *lk_server_timings_json(const lk_analysis *a)
                                                       "features_ms"};
     cJSON *o = cJSON_CreateObject();
     for (int i = 0; i < LK_STAGE_COUNT; i++)
-        cJSON_AddNumberToObject(o, names[i], a->stage_ms[i]);
+        lk_json_add_number(o, names[i], a->stage_ms[i]);
     return o;
 }
 
@@ -588,7 +607,7 @@ static bool load_template(lk_server *s, srv_request *r, srv_worker_state *w, con
     lk_keyring_refresh(s->keys, NULL, NULL);
     lk_template_binding b;
     memset(&b, 0, sizeof b);
-    snprintf(b.template_id, sizeof b.template_id, "%s", id);
+    snprintf(b.template_id, sizeof b.template_id, "%.32s", id);
     snprintf(b.model_id, sizeof b.model_id, "%s", lk_model_id(s->model));
     b.feature_config = lk_model_feature_config(s->model);
     size_t dim = 0;
@@ -687,9 +706,9 @@ static void handle_verify(lk_server *s, srv_request *r, srv_worker_state *w)
     cJSON *j = cJSON_CreateObject();
     cJSON_AddStringToObject(j, "decision_id", decision_id);
     cJSON_AddStringToObject(j, "decision", decision);
-    cJSON_AddNumberToObject(j, "score", score);
-    cJSON_AddNumberToObject(j, "threshold", threshold);
-    cJSON_AddNumberToObject(j, "target_fmr", target);
+    lk_json_add_number(j, "score", score);
+    lk_json_add_number(j, "threshold", threshold);
+    lk_json_add_number(j, "target_fmr", target);
     cJSON_AddStringToObject(j, "model_id", lk_model_id(s->model));
     cJSON_AddStringToObject(j, "reference_type", tid ? "template" : "image");
     if (tid)
@@ -702,8 +721,8 @@ static void handle_verify(lk_server *s, srv_request *r, srv_worker_state *w)
     cJSON_AddItemToObject(tm, "probe", lk_server_timings_json(&ap));
     if (!tid)
         cJSON_AddItemToObject(tm, "reference", lk_server_timings_json(&ar));
-    cJSON_AddNumberToObject(tm, "compare", compare_ms);
-    cJSON_AddNumberToObject(tm, "total", (srv_now() - t0) * 1e3);
+    lk_json_add_number(tm, "compare", compare_ms);
+    lk_json_add_number(tm, "total", (srv_now() - t0) * 1e3);
     reply_json(r, 200, j, "application/json");
     lk_api_request_clear(&q);
     return;
@@ -726,7 +745,7 @@ static cJSON *template_json(const lk_template_meta *m, bool with_key)
         cJSON_AddStringToObject(j, "subject_ref", m->subject_ref);
     else
         cJSON_AddNullToObject(j, "subject_ref");
-    cJSON_AddNumberToObject(j, "image_count", m->image_count);
+    lk_json_add_number(j, "image_count", m->image_count);
     cJSON_AddStringToObject(j, "model_id", m->model_id);
     srv_rfc3339_ms(m->created_ms, ts);
     cJSON_AddStringToObject(j, "created", ts);
@@ -891,30 +910,30 @@ static void handle_model(lk_server *s, srv_request *r)
     cJSON_AddStringToObject(j, "model_id", lk_model_id(m));
     cJSON_AddStringToObject(j, "checksum", lk_model_checksum(m));
     cJSON_AddStringToObject(j, "feature_config", lk_model_feature_config(m));
-    cJSON_AddNumberToObject(j, "feature_dim", (double)lk_model_feature_dim(m));
-    cJSON_AddNumberToObject(j, "default_target_fmr", lk_model_default_fmr(m));
-    cJSON_AddNumberToObject(j, "target_fmr", s->target_fmr);
-    cJSON_AddNumberToObject(j, "threshold", s->threshold);
+    lk_json_add_number(j, "feature_dim", (double)lk_model_feature_dim(m));
+    lk_json_add_number(j, "default_target_fmr", lk_model_default_fmr(m));
+    lk_json_add_number(j, "target_fmr", s->target_fmr);
+    lk_json_add_number(j, "threshold", s->threshold);
     cJSON *ops = cJSON_AddArrayToObject(j, "operating_points");
     size_t n = 0;
     const lk_model_operating_point *op = lk_model_operating_points(m, &n);
     for (size_t i = 0; i < n; i++) {
         cJSON *o = cJSON_CreateObject();
-        cJSON_AddNumberToObject(o, "target_fmr", op[i].target_fmr);
-        cJSON_AddNumberToObject(o, "threshold", op[i].prob_threshold);
-        cJSON_AddNumberToObject(o, "measured_fmr", op[i].measured_fmr);
-        cJSON_AddNumberToObject(o, "measured_fnmr", op[i].measured_fnmr);
-        cJSON_AddNumberToObject(o, "impostor_comparisons", (double)op[i].impostor_comparisons);
-        cJSON_AddNumberToObject(o, "genuine_comparisons", (double)op[i].genuine_comparisons);
+        lk_json_add_number(o, "target_fmr", op[i].target_fmr);
+        lk_json_add_number(o, "threshold", op[i].prob_threshold);
+        lk_json_add_number(o, "measured_fmr", op[i].measured_fmr);
+        lk_json_add_number(o, "measured_fnmr", op[i].measured_fnmr);
+        lk_json_add_number(o, "impostor_comparisons", (double)op[i].impostor_comparisons);
+        lk_json_add_number(o, "genuine_comparisons", (double)op[i].genuine_comparisons);
         cJSON_AddBoolToObject(o, "supported", op[i].supported);
         cJSON_AddItemToArray(ops, o);
     }
     lk_model_provenance p = lk_model_get_provenance(m);
     cJSON *pj = cJSON_AddObjectToObject(j, "provenance");
     cJSON_AddStringToObject(pj, "dataset", p.dataset ? p.dataset : "");
-    cJSON_AddNumberToObject(pj, "training_pairs", (double)p.training_pairs);
-    cJSON_AddNumberToObject(pj, "calibration_pairs", (double)p.calibration_pairs);
-    cJSON_AddNumberToObject(pj, "evaluation_pairs", (double)p.evaluation_pairs);
+    lk_json_add_number(pj, "training_pairs", (double)p.training_pairs);
+    lk_json_add_number(pj, "calibration_pairs", (double)p.calibration_pairs);
+    lk_json_add_number(pj, "evaluation_pairs", (double)p.evaluation_pairs);
     cJSON_AddStringToObject(pj, "created_utc", p.created_utc ? p.created_utc : "");
     cJSON_AddStringToObject(pj, "software_version", p.software_version ? p.software_version : "");
     reply_json(r, 200, j, "application/json");

@@ -281,7 +281,7 @@ lk_code lk_multipart_parse(const uint8_t *body, size_t len, const char *boundary
 
 static lk_code bad(lk_api_request *req, const char *field, lk_error *err, const char *msg)
 {
-    snprintf(req->field, sizeof req->field, "%s", field ? field : "");
+    snprintf(req->field, sizeof req->field, "%.31s", field ? field : "");
     return lk_error_set(err, LK_ERR_INVALID_ARGUMENT, "%s", msg);
 }
 
@@ -372,7 +372,7 @@ static lk_code set_image(lk_api_request *req, lk_api_kind kind, const char *name
     }
     if (kind == LK_API_ENROL && (!strcmp(name, "image") || !strcmp(name, "images"))) {
         if (req->n_images == LK_API_MAX_IMAGES)
-            return bad(req, "image", err, "at most 10 images per enrolment");
+            return bad(req, req->n_owned ? "images" : "image", err, "at most 10 images per enrolment");
         req->images[req->n_images] = v;
         req->image_len[req->n_images++] = n;
         return LK_OK;
@@ -381,7 +381,7 @@ static lk_code set_image(lk_api_request *req, lk_api_kind kind, const char *name
     return bad(req, "", err, msg);
 }
 
-static lk_code finish(lk_api_request *req, lk_api_kind kind, lk_error *err)
+static lk_code finish(lk_api_request *req, lk_api_kind kind, bool json, lk_error *err)
 {
     if (kind == LK_API_VERIFY) {
         if (!req->probe)
@@ -392,7 +392,7 @@ static lk_code finish(lk_api_request *req, lk_api_kind kind, lk_error *err)
             return bad(req, "template_id", err,
                        "give either a reference image or a template_id, not both");
     } else if (req->n_images == 0) {
-        return bad(req, "image", err, "at least one image is required");
+        return bad(req, json ? "images" : "image", err, "at least one image is required");
     }
     return LK_OK;
 }
@@ -419,7 +419,7 @@ static lk_code parse_multipart(lk_api_request *req, lk_api_kind kind, const char
         if (c)
             return c;
     }
-    return finish(req, kind, err);
+    return finish(req, kind, false, err);
 }
 
 static lk_code json_image(lk_api_request *req, lk_api_kind kind, const char *name,
@@ -509,7 +509,7 @@ static lk_code parse_json(lk_api_request *req, lk_api_kind kind, const uint8_t *
         }
     }
     if (!c)
-        c = finish(req, kind, err);
+        c = finish(req, kind, true, err);
 out:
     cJSON_Delete(root);
     return c;

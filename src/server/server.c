@@ -165,7 +165,7 @@ static void authenticate(srv_request *r, struct MHD_Connection *conn)
     if (r->cert_subject[0]) {
         for (size_t i = 0; i < s->cfg.n_clients; i++)
             if (!strcmp(s->cfg.clients[i].subject, r->cert_subject)) {
-                snprintf(r->caller, sizeof r->caller, "mtls:%s", s->cfg.clients[i].name);
+                snprintf(r->caller, sizeof r->caller, "mtls:%.240s", r->cert_subject);
                 r->scopes = s->cfg.clients[i].scopes;
                 r->authenticated = true;
                 return;

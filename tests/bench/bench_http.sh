@@ -1,0 +1,74 @@
+#!/usr/bin/env bash
+# Throughput and latency of likenessd over TLS keep-alive, measured with wrk
+# (Debian's package): image-vs-image and image-vs-template verifications,
+# then resident memory after 10,000 requests. Rerun with
+#   bash tests/bench/bench_http.sh [SECONDS] [CONNECTIONS]
+# Needs a release build in build-release/ (deploy/run.sh or
+#   cmake -S . -B build-release -DCMAKE_BUILD_TYPE=Release && cmake --build build-release)
+# and the LFW photos in ../shared (or set PROBE and REFERENCE to two JPEGs).
+set -euo pipefail
+cd "$(dirname "$0")/../.."
+ROOT=$PWD
+SECS=${1:-30}
+CONNS=${2:-8}
+BIN=${BIN:-$ROOT/build-release/bin}
+LFW=${LFW:-$ROOT/../shared/datasets/lfw/lfw-deepfunneled}
+PROBE=${PROBE:-$LFW/Aaron_Peirsol/Aaron_Peirsol_0001.jpg}
+REFERENCE=${REFERENCE:-$LFW/Aaron_Peirsol/Aaron_Peirsol_0002.jpg}
+for f in "$BIN/likenessd" "$PROBE" "$REFERENCE"; do
+  [ -e "$f" ] || { echo "bench_http: missing $f" >&2; exit 1; }
+done
+command -v wrk >/dev/null || { echo "bench_http: wrk is not installed (apt-get install wrk)" >&2; exit 1; }
+
+T=$(mktemp -d)
+PORT=$((20000 + RANDOM % 20000))
+cleanup() { [ -n "${PID:-}" ] && kill "$PID" 2>/dev/null; wait 2>/dev/null; rm -rf "$T"; }
+trap cleanup EXIT
+bash certs-example/make-dev-certs.sh "$T/tls" >/dev/null
+"$BIN/likeness" keys init --key-file "$T/keys" >/dev/null
+cat > "$T/cfg.ini" <<INI
+[server]
+port = $PORT
+cert_file = tls/server.crt
+key_file = tls/server.key
+queue_depth = 256
+[model]
+file = $ROOT/models/likeness-lfw.lkmodel
+[store]
+url = sqlite:$T/store.db
+[keys]
+file = keys
+[limits]
+rate_per_second = 1000000
+burst = 1000000
+INI
+TOKEN=$("$BIN/likeness" keys api-create --config "$T/cfg.ini" --name bench --scopes verify,enrol 2>/dev/null)
+export TOKEN
+"$BIN/likenessd" --config "$T/cfg.ini" 2>"$T/log" &
+PID=$!
+for _ in $(seq 50); do curl -sk "https://127.0.0.1:$PORT/healthz" >/dev/null && break; sleep 0.2; done
+U=https://127.0.0.1:$PORT
+
+# Multipart body of the two images, and of the probe plus a template id.
+B=lkbench7b1e
+mk_part() { printf -- '--%s\r\nContent-Disposition: form-data; name="%s"; filename="%s"\r\nContent-Type: image/jpeg\r\n\r\n' "$B" "$1" "$(basename "$2")"; cat "$2"; printf '\r\n'; }
+{ mk_part probe "$PROBE"; mk_part reference "$REFERENCE"; printf -- '--%s--\r\n' "$B"; } > "$T/pair.body"
+TID=$(curl -sS --cacert "$T/tls/ca.crt" "$U/v1/templates" -H "Authorization: Bearer $TOKEN" \
+        -F "image=@$REFERENCE" | /usr/bin/python3 -c 'import json,sys; print(json.load(sys.stdin)["template_id"])')
+{ mk_part probe "$PROBE"; printf -- '--%s\r\nContent-Disposition: form-data; name="template_id"\r\n\r\n%s\r\n--%s--\r\n' "$B" "$TID" "$B"; } > "$T/tpl.body"
+export CTYPE="multipart/form-data; boundary=$B"
+
+rss() { awk '/VmRSS/ {print $2}' "/proc/$PID/status"; }
+echo "likenessd $(nproc) cores, workers = cores, $CONNS connections, ${SECS}s per run"
+echo "RSS after start: $(rss) kB"
+for kind in pair tpl; do
+  BODY="$T/$kind.body" wrk -t2 -c"$CONNS" -d"${SECS}s" --timeout 10s --latency \
+      -s tests/bench/wrk_post.lua "$U/v1/verifications" | grep RESULT | sed "s/^RESULT/$kind:/"
+done
+# Resident memory after 10,000 requests in all (the runs above count too).
+N=$(curl -sk "$U/metrics" | awk '/^likeness_http_requests_total/ {s += $2} END {print s}')
+while [ "${N%.*}" -lt 10000 ]; do
+  BODY="$T/tpl.body" wrk -t2 -c"$CONNS" -d10s -s tests/bench/wrk_post.lua "$U/v1/verifications" >/dev/null
+  N=$(curl -sk "$U/metrics" | awk '/^likeness_http_requests_total/ {s += $2} END {print s}')
+done
+echo "RSS after $N requests: $(rss) kB"
