@@ -488,6 +488,8 @@ lk_code lk_server_listen(lk_server *s, lk_error *err)
     }
     struct MHD_OptionItem opts[16];
     int n = 0;
+    /* The logger first, so no message goes to libmicrohttpd's own stderr logger. */
+    opts[n++] = (struct MHD_OptionItem){MHD_OPTION_EXTERNAL_LOGGER, (intptr_t)mhd_log, s};
     opts[n++] = (struct MHD_OptionItem){MHD_OPTION_HTTPS_MEM_CERT, 0, s->cert_pem};
     opts[n++] = (struct MHD_OptionItem){MHD_OPTION_HTTPS_MEM_KEY, 0, s->key_pem};
     opts[n++] = (struct MHD_OptionItem){MHD_OPTION_HTTPS_PRIORITIES, 0, s->cfg.tls_priorities};
@@ -501,7 +503,6 @@ lk_code lk_server_listen(lk_server *s, lk_error *err)
     opts[n++] = (struct MHD_OptionItem){MHD_OPTION_CONNECTION_LIMIT,
                                         (intptr_t)cfg->max_connections, NULL};
     opts[n++] = (struct MHD_OptionItem){MHD_OPTION_NOTIFY_COMPLETED, (intptr_t)on_completed, s};
-    opts[n++] = (struct MHD_OptionItem){MHD_OPTION_EXTERNAL_LOGGER, (intptr_t)mhd_log, s};
     opts[n++] = (struct MHD_OptionItem){MHD_OPTION_END, 0, NULL};
     s->daemon = MHD_start_daemon(flags, (uint16_t)cfg->port, NULL, NULL, on_request, s,
                                  MHD_OPTION_ARRAY, opts, MHD_OPTION_END);
