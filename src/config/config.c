@@ -96,6 +96,10 @@ static lk_code set_key(parse_ctx *p, const key_def *k, const char *value)
 {
     char *base = (char *)p->c;
     void *field = base + k->offset;
+    /* libinih reads lines of at most 199 characters; the default priority
+     * string is longer, so it has a short name. */
+    if (!strcmp(k->name, "tls_priorities") && !strcmp(value, "default"))
+        value = LK_CONFIG_TLS_PRIORITIES;
     if (k->type == K_STR || k->type == K_PATH) {
         int ok = k->type == K_PATH ? resolve_path(p, value, field, k->size)
                                    : snprintf(field, k->size, "%s", value) < (int)k->size;
@@ -244,6 +248,20 @@ lk_code lk_config_load(lk_config *c, const char *path, lk_error *err)
         if (!f)
             return lk_error_set(err, LK_ERR_CONFIG, "cannot read configuration %s: %s", path,
                                 strerror(errno));
+        /* libinih (as Debian builds it) splits lines longer than 199
+         * characters, which would misread them: refuse them plainly. */
+        int ch, col = 0, lineno = 1;
+        while ((ch = getc(f)) != EOF) {
+            if (ch == '\n') {
+                lineno++;
+                col = 0;
+            } else if (++col > 198) {
+                fclose(f);
+                return lk_error_set(err, LK_ERR_CONFIG, "%s: line %d is longer than 198 characters",
+                                    path, lineno);
+            }
+        }
+        rewind(f);
         int line = ini_parse_file(f, on_entry, &p);
         fclose(f);
         if (p.failed) {
@@ -315,7 +333,11 @@ char *lk_config_to_ini(const lk_config *c)
         const void *f = base + k->offset;
         switch (k->type) {
         case K_STR:
-        case K_PATH: append(&buf, &len, &cap, "%s = %s\n", k->name, (const char *)f); break;
+        case K_PATH:
+            if (!strcmp(k->name, "tls_priorities") && !strcmp(f, LK_CONFIG_TLS_PRIORITIES))
+                f = "default";
+            append(&buf, &len, &cap, "%s = %s\n", k->name, (const char *)f);
+            break;
         case K_INT: append(&buf, &len, &cap, "%s = %d\n", k->name, *(const int *)f); break;
         case K_UINT: append(&buf, &len, &cap, "%s = %u\n", k->name, *(const unsigned *)f); break;
         case K_U64:

@@ -1,0 +1,84 @@
+"""SIGTERM drains likenessd: requests already accepted are answered (200),
+the process exits 0 within the drain timeout, new connections are refused
+afterwards, and the audit chain it leaves verifies and ends in a signed
+checkpoint. HTTPS by curl; the chain checked by `likeness audit verify`.
+Needs $LIKENESS_BIN/likenessd and likeness, curl, and LFW in $LIKENESS_SHARED."""
+import json
+import os
+import signal
+import socket
+import subprocess
+import sys
+import tempfile
+import time
+
+sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+from lkref import check, finish, skip  # noqa: E402
+
+SRC = os.environ.get("LIKENESS_SOURCE", ".")
+BIN = os.environ.get("LIKENESS_BIN", "build/bin")
+SHARED = os.environ.get("LIKENESS_SHARED", "../shared")
+LFW = os.path.join(SHARED, "datasets", "lfw", "lfw-deepfunneled")
+A = os.path.join(LFW, "Aaron_Peirsol", "Aaron_Peirsol_0001.jpg")
+B = os.path.join(LFW, "Aaron_Peirsol", "Aaron_Peirsol_0002.jpg")
+for f in (os.path.join(BIN, "likenessd"), A, B):
+    if not os.path.exists(f):
+        skip(f"{f} is missing")
+
+d = tempfile.mkdtemp(prefix="lk-drain-")
+subprocess.run(["bash", os.path.join(SRC, "certs-example", "make-dev-certs.sh"), d + "/tls"],
+               check=True, capture_output=True)
+subprocess.run([BIN + "/likeness", "keys", "init", "--key-file", d + "/keys"], check=True,
+               capture_output=True)
+s = socket.socket()
+s.bind(("127.0.0.1", 0))
+port = s.getsockname()[1]
+s.close()
+cfg = d + "/cfg.ini"
+with open(cfg, "w") as f:
+    f.write(f"[server]\nport = {port}\ncert_file = tls/server.crt\nkey_file = tls/server.key\n"
+            f"workers = 1\nqueue_depth = 16\ndrain_timeout_s = 60\n"
+            f"[model]\nfile = {SRC}/models/likeness-lfw.lkmodel\n[store]\nurl = sqlite:{d}/store.db\n"
+            f"[keys]\nfile = keys\n[audit]\ncheckpoint_interval = 1000\n")
+token = subprocess.run([BIN + "/likeness", "keys", "api-create", "--config", cfg, "--name", "t",
+                        "--scopes", "verify,audit"], check=True, capture_output=True,
+                       text=True).stdout.strip()
+log = open(d + "/log", "w")
+srv = subprocess.Popen([BIN + "/likenessd", "--config", cfg], stderr=log)
+url = f"https://127.0.0.1:{port}"
+curl = ["curl", "-sS", "--cacert", d + "/tls/ca.crt"]
+for _ in range(100):
+    if subprocess.run(curl + [url + "/healthz"], capture_output=True).returncode == 0:
+        break
+    time.sleep(0.2)
+
+# Six verifications on one worker: most of them wait in the queue when the
+# signal arrives.
+N = 6
+clients = [subprocess.Popen(curl + ["-o", "/dev/null", "-w", "%{http_code}", "-H",
+                                    "Authorization: Bearer " + token, "-F", "probe=@" + A,
+                                    "-F", "reference=@" + B, url + "/v1/verifications"],
+                            stdout=subprocess.PIPE, text=True) for _ in range(N)]
+time.sleep(1.0)
+t0 = time.time()
+srv.send_signal(signal.SIGTERM)
+codes = [c.communicate(timeout=120)[0] for c in clients]
+check(codes == ["200"] * N, f"every request accepted before SIGTERM is answered 200: {codes}")
+try:
+    rc = srv.wait(timeout=90)
+except subprocess.TimeoutExpired:
+    srv.kill()
+    rc = None
+check(rc == 0, f"likenessd exits 0 after draining (exit {rc}, {time.time() - t0:.1f} s)")
+after = subprocess.run(curl + ["--max-time", "5", url + "/healthz"], capture_output=True)
+check(after.returncode != 0, "no connection is accepted once it has stopped")
+v = subprocess.run([BIN + "/likeness", "audit", "verify", "--config", cfg], capture_output=True,
+                   text=True)
+rep = json.loads(v.stdout) if v.stdout.strip().startswith("{") else {}
+check(v.returncode == 0 and rep.get("ok") is True, f"the audit chain verifies: {v.stdout.strip()}")
+check(rep.get("records") == N, f"one audit record per answered verification ({rep.get('records')})")
+check(rep.get("checkpoints", 0) >= 1, "a checkpoint was signed at shutdown "
+      f"({rep.get('checkpoints')} with checkpoint_interval 1000)")
+logtext = open(d + "/log").read()
+check("stopping" in logtext and "stopped" in logtext, "the log tells of the drain")
+sys.exit(finish())
