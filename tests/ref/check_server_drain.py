@@ -1,4 +1,5 @@
-"""SIGTERM drains likenessd: requests already accepted are answered (200),
+"""Expired templates are purged from the store file while the service runs
+(a purge audit record says how many). SIGTERM drains likenessd: requests already accepted are answered (200),
 the process exits 0 within the drain timeout, new connections are refused
 afterwards, and the audit chain it leaves verifies and ends in a signed
 checkpoint. HTTPS by curl; the chain checked by `likeness audit verify`.
@@ -38,10 +39,11 @@ cfg = d + "/cfg.ini"
 with open(cfg, "w") as f:
     f.write(f"[server]\nport = {port}\ncert_file = tls/server.crt\nkey_file = tls/server.key\n"
             f"workers = 1\nqueue_depth = 16\ndrain_timeout_s = 60\n"
+            f"[templates]\npurge_interval_s = 1\n"
             f"[model]\nfile = {SRC}/models/likeness-lfw.lkmodel\n[store]\nurl = sqlite:{d}/store.db\n"
             f"[keys]\nfile = keys\n[audit]\ncheckpoint_interval = 1000\n")
 token = subprocess.run([BIN + "/likeness", "keys", "api-create", "--config", cfg, "--name", "t",
-                        "--scopes", "verify,audit"], check=True, capture_output=True,
+                        "--scopes", "verify,audit,enrol"], check=True, capture_output=True,
                        text=True).stdout.strip()
 log = open(d + "/log", "w")
 srv = subprocess.Popen([BIN + "/likenessd", "--config", cfg], stderr=log)
@@ -51,6 +53,22 @@ for _ in range(100):
     if subprocess.run(curl + [url + "/healthz"], capture_output=True).returncode == 0:
         break
     time.sleep(0.2)
+
+# A template that lives one second is gone from the file soon after.
+import sqlite3  # noqa: E402
+enrol = subprocess.run(curl + ["-H", "Authorization: Bearer " + token, "-F", "image=@" + A,
+                               "-F", "ttl_seconds=1", url + "/v1/templates"],
+                       capture_output=True, text=True)
+tid = json.loads(enrol.stdout).get("template_id", "") if enrol.stdout.startswith("{") else ""
+check(len(tid) == 32, f"enrolled a template with ttl_seconds 1 ({tid})")
+gone = False
+for _ in range(40):
+    time.sleep(0.25)
+    with sqlite3.connect(f"file:{d}/store.db?mode=ro", uri=True) as db:
+        if db.execute("SELECT count(*) FROM templates WHERE template_id = ?", (tid,)).fetchone()[0] == 0:
+            gone = True
+            break
+check(gone, "the expired template's row is deleted from the store (Python's sqlite3)")
 
 # Six verifications on one worker: most of them wait in the queue when the
 # signal arrives.
@@ -76,7 +94,13 @@ v = subprocess.run([BIN + "/likeness", "audit", "verify", "--config", cfg], capt
                    text=True)
 rep = json.loads(v.stdout) if v.stdout.strip().startswith("{") else {}
 check(v.returncode == 0 and rep.get("ok") is True, f"the audit chain verifies: {v.stdout.strip()}")
-check(rep.get("records") == N, f"one audit record per answered verification ({rep.get('records')})")
+check(rep.get("records") == N + 2,
+      f"audit: enrolment + purge + one record per verification ({rep.get('records')} = {N} + 2)")
+with sqlite3.connect(f"file:{d}/store.db?mode=ro", uri=True) as db:
+    ops = [r[0] for r in db.execute("SELECT operation FROM audit_records ORDER BY seq")]
+check(ops[:2] == [2, 7] and ops[2:] == [1] * N,
+      f"audit operations in order: enrolment (2), purge (7), verifications (1) "
+      f"per docs/audit-format.md: {ops}")
 check(rep.get("checkpoints", 0) >= 1, "a checkpoint was signed at shutdown "
       f"({rep.get('checkpoints')} with checkpoint_interval 1000)")
 logtext = open(d + "/log").read()
