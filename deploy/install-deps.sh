@@ -7,7 +7,7 @@ PKGS=(
   build-essential cmake pkg-config git
   libturbojpeg0-dev libpng-dev libexif-dev libxml2-dev
   libcjson-dev libsodium-dev libssl-dev libsqlite3-dev libinih-dev libmicrohttpd-dev
-  libgnutls28-dev
+  libgnutls28-dev libpq-dev postgresql postgresql-client
   opencv-data
   openssl curl ca-certificates
   python3 python3-numpy python3-pil python3-skimage python3-sklearn python3-opencv python3-nacl

@@ -211,7 +211,7 @@ static lk_code apply_environment(parse_ctx *p)
 static lk_code validate(const lk_config *c, lk_error *err)
 {
     if (!c->store_url[0])
-        return lk_error_set(err, LK_ERR_CONFIG, "[store] url is required (e.g. sqlite:/var/lib/likeness/store.db)");
+        return lk_error_set(err, LK_ERR_CONFIG, "[store] url is required (e.g. sqlite:/var/lib/likeness/store.db or postgres://likeness@db.example:5432/likeness)");
     if (!c->key_file_path[0])
         return lk_error_set(err, LK_ERR_CONFIG, "[keys] file is required (create one with 'likeness keys init --key-file PATH')");
     if (c->burst < 1)

@@ -1,7 +1,8 @@
 /* The interface every store backend implements. store.c owns the lk_store
  * (URL dispatch, the per-handle lock) and calls one of these; a backend sees
- * only its own handle and never locks. Adding a database means one more
- * lk_store_backend and one more URL scheme in store.c. */
+ * only its own handle and, unless it is `concurrent`, never locks. Adding a
+ * database means one more lk_store_backend and one more URL scheme in
+ * store.c. */
 #ifndef LIKENESS_STORE_BACKEND_H
 #define LIKENESS_STORE_BACKEND_H
 
@@ -12,6 +13,9 @@ typedef bool (*lk_store_checkpoint_fn)(const lk_audit_checkpoint *c, void *ctx);
 
 typedef struct lk_store_backend {
     const char *name;
+    /* true: the backend is safe to call from several threads at once (it
+     * guards its own connections) and store.c takes no handle lock. */
+    bool concurrent;
     void (*close)(void *h);
     int (*schema_version)(void *h);
     lk_code (*ping)(void *h, lk_error *err);
@@ -53,6 +57,10 @@ typedef struct lk_store_backend {
 /* SQLite: path is a file name (already stripped of "sqlite:"). */
 extern const lk_store_backend lk_store_sqlite_backend;
 void *lk_store_sqlite_open(const char *path, lk_error *err);
+
+/* PostgreSQL: url is a libpq connection URI (postgres:// or postgresql://). */
+extern const lk_store_backend lk_store_postgres_backend;
+void *lk_store_postgres_open(const char *url, lk_error *err);
 
 /* Shared by backends: signs the checkpoint of (seq, hash) into *c. */
 lk_code lk_store_sign_checkpoint(const lk_keyring *kr, uint64_t seq, const uint8_t hash[32],

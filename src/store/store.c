@@ -1,4 +1,5 @@
-/* lk_store: URL dispatch to a backend, one lock per handle, and the pieces
+/* lk_store: URL dispatch to a backend (sqlite:PATH or a path: SQLite;
+ * postgres:// or postgresql://: PostgreSQL), one lock per handle, and the pieces
  * that do not depend on the database (scopes, checkpoint signing, chain
  * verification). */
 #include "backend.h"
@@ -34,22 +35,22 @@ lk_store *lk_store_open(const char *url, lk_error *err)
     if (!url || !*url) {
         lk_error_set(err, LK_ERR_INVALID_ARGUMENT,
                      "no store given: set [store] url in the configuration or pass --store "
-                     "sqlite:PATH");
+                     "sqlite:PATH (or postgres://USER@HOST:PORT/DATABASE)");
         return NULL;
     }
-    if (has_prefix(url, "postgres://") || has_prefix(url, "postgresql://")) {
-        lk_error_set(err, LK_ERR_STORE,
-                     "PostgreSQL support is not built in; use a SQLite store (sqlite:PATH)");
-        return NULL;
-    }
+    const lk_store_backend *be = &lk_store_sqlite_backend;
     const char *path = url;
-    if (has_prefix(url, "sqlite://"))
+    if (has_prefix(url, "postgres://") || has_prefix(url, "postgresql://"))
+        be = &lk_store_postgres_backend; /* a libpq connection URI, passed whole */
+    else if (has_prefix(url, "sqlite://"))
         path = url + strlen("sqlite://"); /* sqlite:///abs/path -> /abs/path */
     else if (has_prefix(url, "sqlite:"))
         path = url + strlen("sqlite:");
     else if (strstr(url, "://")) {
         lk_error_set(err, LK_ERR_STORE,
-                     "unsupported store URL '%s': use sqlite:PATH or a plain file path", url);
+                     "unsupported store URL '%s': use sqlite:PATH, a plain file path or "
+                     "postgres://USER@HOST:PORT/DATABASE",
+                     url);
         return NULL;
     }
     if (!*path) {
@@ -72,8 +73,9 @@ lk_store *lk_store_open(const char *url, lk_error *err)
         lk_error_set(err, LK_ERR_NOMEM, "cannot create the store's lock");
         return NULL;
     }
-    s->be = &lk_store_sqlite_backend;
-    s->h = lk_store_sqlite_open(path, err);
+    s->be = be;
+    s->h = be == &lk_store_postgres_backend ? lk_store_postgres_open(url, err)
+                                            : lk_store_sqlite_open(path, err);
     if (!s->h) {
         pthread_mutex_destroy(&s->mu);
         free(s);
@@ -91,11 +93,16 @@ void lk_store_close(lk_store *s)
     free(s);
 }
 
+/* A backend that guards its own connections (PostgreSQL's pool) runs
+ * requests of several threads at once; the others are serialised here. */
 #define LOCKED(s, expr)                                                                   \
     do {                                                                                  \
-        pthread_mutex_lock(&(s)->mu);                                                     \
+        const bool lk_serial_ = !(s)->be->concurrent;                                     \
+        if (lk_serial_)                                                                   \
+            pthread_mutex_lock(&(s)->mu);                                                 \
         expr;                                                                             \
-        pthread_mutex_unlock(&(s)->mu);                                                   \
+        if (lk_serial_)                                                                   \
+            pthread_mutex_unlock(&(s)->mu);                                               \
     } while (0)
 
 static lk_code no_store(lk_error *err)

@@ -7,7 +7,15 @@
  *       INTERVAL records, then a checkpoint of the head; prints
  *       "public_key HEX".
  *   lkt_store_audit_fill canonical DB
- *       prints "SEQ CANONICAL_HEX" per record, as lk_audit_canonical encodes it. */
+ *       prints "SEQ CANONICAL_HEX" per record, as lk_audit_canonical encodes it.
+ *   lkt_store_audit_fill keygen KEYFILE
+ *       creates KEYFILE, so that several fill processes can share it.
+ *   lkt_store_audit_fill outage DB KEYFILE
+ *       for a database server that goes away and comes back: opens the store,
+ *       pings, prints "up", then for each line read on standard input
+ *       ("ping" or "append") does that once and prints "ok" or "error CODE
+ *       MESSAGE". Exits 0 at the end of input.
+ * DB is a store URL (sqlite:PATH, a path, or postgres://...). */
 #include <math.h>
 #include <stdio.h>
 #include <stdlib.h>
@@ -62,6 +70,41 @@ static bool print_canonical(const lk_audit_record *r, void *ctx)
     return true;
 }
 
+static int outage(const char *url, const char *keyfile)
+{
+    lk_error err;
+    lk_keyring *kr = lk_keyring_load(keyfile, &err);
+    lk_store *s = kr ? lk_store_open(url, &err) : NULL;
+    if (!s || lk_store_ping(s, &err) != LK_OK) {
+        fprintf(stderr, "%s\n", err.message);
+        lk_store_close(s);
+        lk_keyring_free(kr);
+        return 1;
+    }
+    printf("up\n");
+    fflush(stdout);
+    char line[64];
+    int i = 0;
+    while (fgets(line, sizeof line, stdin)) {
+        lk_code rc;
+        if (!strncmp(line, "ping", 4)) {
+            rc = lk_store_ping(s, &err);
+        } else {
+            lk_audit_record r;
+            fill(&r, i++);
+            rc = lk_store_audit_append(s, &r, kr, 0, &err);
+        }
+        if (rc == LK_OK)
+            printf("ok\n");
+        else
+            printf("error %s %s\n", lk_code_name(rc), err.message);
+        fflush(stdout);
+    }
+    lk_store_close(s);
+    lk_keyring_free(kr);
+    return 0;
+}
+
 int main(int argc, char **argv)
 {
     lk_error err;
@@ -77,8 +120,20 @@ int main(int argc, char **argv)
             fprintf(stderr, "%s\n", err.message);
         return rc == LK_OK ? 0 : 1;
     }
+    if (argc == 3 && !strcmp(argv[1], "keygen")) {
+        if (lk_keyring_create(argv[2], &err) != LK_OK) {
+            fprintf(stderr, "%s\n", err.message);
+            return 1;
+        }
+        return 0;
+    }
+    if (argc == 4 && !strcmp(argv[1], "outage"))
+        return outage(argv[2], argv[3]);
     if (argc != 6 || strcmp(argv[1], "fill")) {
-        fprintf(stderr, "usage: %s fill DB KEYFILE N INTERVAL | canonical DB\n", argv[0]);
+        fprintf(stderr,
+                "usage: %s fill DB KEYFILE N INTERVAL | canonical DB | keygen KEYFILE | "
+                "outage DB KEYFILE\n",
+                argv[0]);
         return 2;
     }
     if (access(argv[3], F_OK) != 0 && lk_keyring_create(argv[3], &err) != LK_OK) {

@@ -1,7 +1,17 @@
-/* The SQLite store: templates, API keys, the audit chain, schema versions and
- * concurrent appends. The file's journal mode, integrity and the chain's bytes
- * are checked independently with Python's sqlite3, hashlib and PyNaCl in
- * tests/ref/check_audit_chain.py. */
+/* The store: templates, API keys, the audit chain, schema versions and
+ * concurrent appends, against SQLite (the default) or, when the environment
+ * names one, a PostgreSQL database:
+ *
+ *   LIKENESS_TEST_STORE_URL=postgres://USER@HOST:PORT/DB test_store_sqlite
+ *
+ * (tests/ref/check_store_postgres.py starts a throwaway server and does so).
+ * A variable of its own, not the service's LIKENESS_STORE_URL: the run makes
+ * and drops schemas named lkt_<pid>_* in that database, so it must never
+ * reach a production store by accident. The SQLite file's journal mode,
+ * integrity and the chain's bytes are checked independently with Python's
+ * sqlite3, hashlib and PyNaCl in tests/ref/check_audit_chain.py; the
+ * PostgreSQL rows with psql and hashlib in tests/ref/check_store_postgres.py. */
+#include <libpq-fe.h>
 #include <math.h>
 #include <pthread.h>
 #include <sodium.h>
@@ -15,10 +25,62 @@
 #include "lk_test.h"
 
 static char dir[] = "/tmp/lk_store_test_XXXXXX";
+/* NULL: SQLite files in dir; else the PostgreSQL database to test in. */
+static const char *pg_base;
 
-static void path_in(char *out, size_t cap, const char *name)
+/* A fresh, empty store called name: a file in dir, or a new PostgreSQL
+ * schema selected through libpq's `options` parameter (search_path). */
+static void store_url(char *out, size_t cap, const char *name)
 {
-    snprintf(out, cap, "%s/%s", dir, name);
+    if (!pg_base) {
+        snprintf(out, cap, "sqlite:%s/%s.db", dir, name);
+        return;
+    }
+    snprintf(out, cap, "%s%coptions=-csearch_path%%3Dlkt_%ld_%s", pg_base,
+             strchr(pg_base, '?') ? '&' : '?', (long)getpid(), name);
+}
+
+/* Runs SQL on the store behind the library's back; true on success. */
+static bool exec_sql(const char *url, const char *sql)
+{
+    if (!pg_base) {
+        sqlite3 *db;
+        bool ok = sqlite3_open(url + strlen("sqlite:"), &db) == SQLITE_OK &&
+                  sqlite3_exec(db, sql, NULL, NULL, NULL) == SQLITE_OK;
+        sqlite3_close(db);
+        return ok;
+    }
+    PGconn *c = PQconnectdb(url);
+    bool ok = PQstatus(c) == CONNECTION_OK;
+    if (ok) {
+        PQclear(PQexec(c, "SET client_min_messages = warning")); /* no NOTICE chatter */
+        PGresult *r = PQexec(c, sql);
+        ok = PQresultStatus(r) == PGRES_COMMAND_OK || PQresultStatus(r) == PGRES_TUPLES_OK;
+        if (!ok)
+            fprintf(stderr, "note: %s: %s", sql, PQresultErrorMessage(r));
+        PQclear(r);
+    } else {
+        fprintf(stderr, "note: %s", PQerrorMessage(c));
+    }
+    PQfinish(c);
+    return ok;
+}
+
+static bool pg_schema(const char *name, bool create)
+{
+    char sql[256];
+    int n = snprintf(sql, sizeof sql, "DROP SCHEMA IF EXISTS lkt_%ld_%s CASCADE",
+                     (long)getpid(), name);
+    if (create)
+        snprintf(sql + n, sizeof sql - (size_t)n, "; CREATE SCHEMA lkt_%ld_%s", (long)getpid(),
+                 name);
+    return exec_sql(pg_base, sql);
+}
+
+/* Prepares an empty store called name. */
+static bool fresh(const char *name)
+{
+    return pg_base ? pg_schema(name, true) : true;
 }
 
 static lk_template_meta meta(const char *id, const char *key, int64_t expires)
@@ -112,11 +174,22 @@ static void test_templates(lk_store *s)
     free(r);
 }
 
+typedef struct keys_seen {
+    lk_store *s;
+    char names[256];
+    int nested_ok;
+} keys_seen;
+
 static bool collect_keys(const lk_apikey_meta *k, void *ctx)
 {
-    char *names = ctx;
-    strcat(names, k->id);
-    strcat(names, ";");
+    keys_seen *ks = ctx;
+    strcat(ks->names, k->id);
+    strcat(ks->names, ";");
+    /* A callback may call back into the same store (recursive lock for
+     * SQLite, a second pooled connection for PostgreSQL). */
+    lk_apikey_meta again;
+    if (lk_store_apikey_get(ks->s, k->id, &again, NULL) == LK_OK && !strcmp(again.id, k->id))
+        ks->nested_ok++;
     return true;
 }
 
@@ -163,10 +236,11 @@ static void test_apikeys(lk_store *s)
               g.revoked_ms == 7777,
           "revoked once, first time kept");
     CHECK(lk_store_apikey_revoke(s, "nope", 1, &err) == LK_ERR_NOT_FOUND, "revoke absent");
-    char names[256] = "";
-    CHECK(lk_store_apikey_list(s, collect_keys, names, &err) == LK_OK &&
-              !strcmp(names, "00000000000000a1;00000000000000b2;"),
-          "list in creation order: %s", names);
+    keys_seen ks = {s, "", 0};
+    CHECK(lk_store_apikey_list(s, collect_keys, &ks, &err) == LK_OK &&
+              !strcmp(ks.names, "00000000000000a1;00000000000000b2;"),
+          "list in creation order: %s", ks.names);
+    CHECK(ks.nested_ok == 2, "store called from inside a list callback (%d)", ks.nested_ok);
 }
 
 static bool collect_seqs(const lk_audit_record *r, void *ctx)
@@ -269,17 +343,13 @@ static void test_audit(lk_store *s, const lk_keyring *kr)
           (unsigned long long)rep.first_bad_seq);
 }
 
-static void test_tamper_sql(const char *path, const lk_keyring *kr)
+static void test_tamper_sql(const char *url, const lk_keyring *kr)
 {
     /* Edit record 12 behind the store's back. */
-    sqlite3 *db;
-    CHECK(sqlite3_open(path, &db) == SQLITE_OK, "open directly");
-    CHECK(sqlite3_exec(db, "UPDATE audit_records SET decision = 'non_match' WHERE seq = 12", NULL,
-                       NULL, NULL) == SQLITE_OK,
+    CHECK(exec_sql(url, "UPDATE audit_records SET decision = 'non_match' WHERE seq = 12"),
           "tamper");
-    sqlite3_close(db);
     lk_error err;
-    lk_store *s = lk_store_open(path, &err);
+    lk_store *s = lk_store_open(url, &err);
     uint8_t pk[32];
     lk_keyring_audit_public_key(kr, pk);
     lk_audit_report rep;
@@ -292,43 +362,64 @@ static void test_tamper_sql(const char *path, const lk_keyring *kr)
 static void test_versions(void)
 {
     lk_error err;
-    char p[512];
-    path_in(p, sizeof p, "newer.db");
-    lk_store *s = lk_store_open(p, &err);
-    CHECK(s && lk_store_schema_version(s) == LK_STORE_SCHEMA_VERSION, "fresh file migrated");
+    char u[700];
+    CHECK(fresh("newer"), "fresh store");
+    store_url(u, sizeof u, "newer");
+    lk_store *s = lk_store_open(u, &err);
+    CHECK(s && lk_store_schema_version(s) == LK_STORE_SCHEMA_VERSION, "fresh store migrated: %s",
+          s ? "" : err.message);
     lk_store_close(s);
-    sqlite3 *db;
-    sqlite3_open(p, &db);
-    sqlite3_exec(db, "PRAGMA user_version = 99", NULL, NULL, NULL);
-    sqlite3_close(db);
-    s = lk_store_open(p, &err);
+    s = lk_store_open(u, &err);
+    CHECK(s && lk_store_schema_version(s) == LK_STORE_SCHEMA_VERSION, "reopened: %s",
+          s ? "" : err.message);
+    lk_store_close(s);
+    CHECK(exec_sql(u, pg_base ? "UPDATE likeness_schema SET version = 99"
+                              : "PRAGMA user_version = 99"),
+          "set version 99");
+    s = lk_store_open(u, &err);
     CHECK(!s && err.code == LK_ERR_STORE && strstr(err.message, "newer") &&
               strstr(err.message, "99"),
           "newer schema refused: %s", err.message);
     lk_store_close(s);
 
-    path_in(p, sizeof p, "other.db");
-    sqlite3_open(p, &db);
-    sqlite3_exec(db, "PRAGMA application_id = 42; CREATE TABLE t(x)", NULL, NULL, NULL);
-    sqlite3_close(db);
-    s = lk_store_open(p, &err);
+    CHECK(fresh("other"), "fresh store");
+    store_url(u, sizeof u, "other");
+    if (!pg_base) /* make the file exist first */
+        exec_sql(u, "PRAGMA application_id = 42; CREATE TABLE t(x)");
+    else
+        exec_sql(u, "CREATE TABLE templates(x integer)");
+    s = lk_store_open(u, &err);
     CHECK(!s && err.code == LK_ERR_STORE && strstr(err.message, "another program"),
           "another program's database refused: %s", err.message);
+    lk_store_close(s);
 
-    s = lk_store_open("postgres://db.example/likeness", &err);
-    CHECK(!s && err.code == LK_ERR_STORE && strstr(err.message, "PostgreSQL support is not built in"),
-          "postgres URL: %s", err.message);
-    path_in(p, sizeof p, "nodir/x.db");
-    s = lk_store_open(p, &err);
-    CHECK(!s && err.code == LK_ERR_STORE && strstr(err.message, "nodir"),
-          "unopenable path named: %s", err.message);
+    /* Nothing listens on port 1 of the loopback address: refused at once. */
+    s = lk_store_open("postgres://likeness@127.0.0.1:1/likeness?connect_timeout=5", &err);
+    CHECK(!s && err.code == LK_ERR_STORE && strstr(err.message, "unreachable") &&
+              strstr(err.message, "127.0.0.1"),
+          "PostgreSQL server down: %s", err.message);
+    s = lk_store_open("postgresql://127.0.0.1:1/x?no_such_setting=1", &err);
+    CHECK(!s && err.code == LK_ERR_STORE && strstr(err.message, "invalid PostgreSQL store URL"),
+          "bad PostgreSQL URL: %s", err.message);
+    s = lk_store_open("mysql://127.0.0.1/x", &err);
+    CHECK(!s && err.code == LK_ERR_STORE && strstr(err.message, "unsupported"),
+          "unknown scheme: %s", err.message);
+    if (!pg_base) {
+        char p[512];
+        snprintf(p, sizeof p, "%s/nodir/x.db", dir);
+        s = lk_store_open(p, &err);
+        CHECK(!s && err.code == LK_ERR_STORE && strstr(err.message, "nodir"),
+              "unopenable path named: %s", err.message);
+    }
 }
 
-static void test_concurrency(const char *path, const lk_keyring *kr)
+enum { THREADS = 12, PER_THREAD = 20 };
+
+static void test_concurrency(const char *url, const lk_keyring *kr)
 {
     lk_error err;
-    lk_store *a = lk_store_open(path, &err);
-    lk_store *b = lk_store_open(path, &err);
+    lk_store *a = lk_store_open(url, &err);
+    lk_store *b = lk_store_open(url, &err);
     CHECK(a && b, "two handles: %s", err.message);
     if (!a || !b) {
         lk_store_close(a);
@@ -336,24 +427,31 @@ static void test_concurrency(const char *path, const lk_keyring *kr)
         return;
     }
     uint64_t before = lk_store_audit_head(a);
-    /* Two threads on one handle, two on the other handle. */
-    worker w[4] = {{a, kr, 40, 0}, {a, kr, 40, 0}, {b, kr, 40, 0}, {b, kr, 40, 0}};
-    pthread_t t[4];
-    for (int i = 0; i < 4; i++)
+    /* Nine threads on one handle (more than PostgreSQL's pool of eight
+     * connections, so some wait for one), three on the other. */
+    worker w[THREADS];
+    pthread_t t[THREADS];
+    for (int i = 0; i < THREADS; i++) {
+        w[i] = (worker){i < 9 ? a : b, kr, PER_THREAD, 0};
         pthread_create(&t[i], NULL, append_worker, &w[i]);
-    for (int i = 0; i < 4; i++)
+    }
+    int failures = 0;
+    for (int i = 0; i < THREADS; i++) {
         pthread_join(t[i], NULL);
-    CHECK(w[0].failures + w[1].failures + w[2].failures + w[3].failures == 0,
-          "no failed appends");
-    CHECK(lk_store_audit_head(b) == before + 160, "head %llu", (unsigned long long)lk_store_audit_head(b));
+        failures += w[i].failures;
+    }
+    const uint64_t total = THREADS * PER_THREAD;
+    CHECK(failures == 0, "no failed appends");
+    CHECK(lk_store_audit_head(b) == before + total, "head %llu",
+          (unsigned long long)lk_store_audit_head(b));
     uint8_t pk[32];
     lk_keyring_audit_public_key(kr, pk);
     lk_audit_report rep;
     CHECK(lk_store_audit_verify(a, pk, &rep, &err) == LK_OK && rep.ok &&
-              rep.records == before + 160,
+              rep.records == before + total,
           "chain valid after concurrent appends: %s", rep.reason);
     CHECK(lk_store_integrity_check(b, &err) == LK_OK && lk_store_ping(a, &err) == LK_OK,
-          "integrity check, ping");
+          "integrity check, ping: %s", err.message);
     lk_store_close(a);
     lk_store_close(b);
 }
@@ -364,40 +462,68 @@ int main(void)
         LK_SKIP("libsodium failed to initialise");
     if (!mkdtemp(dir))
         LK_SKIP("cannot create a temporary directory");
+    const char *env = getenv("LIKENESS_TEST_STORE_URL");
+    if (env && *env) {
+        if (strncmp(env, "postgres://", 11) != 0 && strncmp(env, "postgresql://", 13) != 0) {
+            fprintf(stderr, "LIKENESS_TEST_STORE_URL must be a postgres:// URL (got %s)\n", env);
+            return 1;
+        }
+        pg_base = env;
+        printf("testing the PostgreSQL store in %s (schemas lkt_%ld_*)\n", env, (long)getpid());
+    }
     lk_error err;
-    char keyp[512], dbp[512];
-    path_in(keyp, sizeof keyp, "keys");
-    path_in(dbp, sizeof dbp, "store.db");
+    char keyp[512], url[700];
+    snprintf(keyp, sizeof keyp, "%s/keys", dir);
     CHECK(lk_keyring_create(keyp, &err) == LK_OK, "key file: %s", err.message);
     lk_keyring *kr = lk_keyring_load(keyp, &err);
     CHECK(kr != NULL, "load keys: %s", err.message);
     if (!kr)
         return lk_test_done();
 
-    char url[600];
-    snprintf(url, sizeof url, "sqlite:%s", dbp);
+    CHECK(fresh("main"), "fresh store");
+    store_url(url, sizeof url, "main");
     lk_store *s = lk_store_open(url, &err);
     CHECK(s != NULL, "open: %s", err.message);
     if (s) {
-        struct stat st;
-        CHECK(stat(dbp, &st) == 0 && (st.st_mode & 077) == 0, "database file mode 0600 (%o)",
-              st.st_mode & 0777);
+        if (!pg_base) {
+            struct stat st;
+            const char *file = url + strlen("sqlite:");
+            CHECK(stat(file, &st) == 0 && (st.st_mode & 077) == 0,
+                  "database file mode 0600 (%o)", st.st_mode & 0777);
+        }
         CHECK(lk_store_schema_version(s) == 1, "schema version 1");
+        CHECK(lk_store_integrity_check(s, &err) == LK_OK, "integrity check: %s", err.message);
         test_templates(s);
         test_apikeys(s);
         test_audit(s, kr);
         lk_store_close(s);
         /* Reopening an existing store migrates nothing and keeps the data. */
-        s = lk_store_open(dbp, &err);
+        s = lk_store_open(url, &err);
         CHECK(s && lk_store_template_count(s) == 3 && lk_store_audit_head(s) == 25,
               "reopened: %s", err.message);
         lk_store_close(s);
-        test_concurrency(dbp, kr);
-        test_tamper_sql(dbp, kr);
+        test_concurrency(url, kr);
+        test_tamper_sql(url, kr);
+        if (pg_base) {
+            /* A store whose table was dropped fails the integrity check. */
+            CHECK(exec_sql(url, "DROP TABLE api_keys"), "drop a table");
+            s = lk_store_open(url, &err);
+            CHECK(s && lk_store_integrity_check(s, &err) == LK_ERR_STORE &&
+                      strstr(err.message, "api_keys"),
+                  "missing table found: %s", err.message);
+            lk_store_close(s);
+        }
     }
     test_versions();
     lk_keyring_free(kr);
 
+    if (pg_base) {
+        const char *names[] = {"main", "newer", "other"};
+        for (size_t i = 0; i < 3; i++)
+            if (!pg_schema(names[i], false))
+                fprintf(stderr, "note: could not drop schema lkt_%ld_%s\n", (long)getpid(),
+                        names[i]);
+    }
     char cmd[600];
     snprintf(cmd, sizeof cmd, "rm -rf '%s'", dir);
     if (system(cmd) != 0)
