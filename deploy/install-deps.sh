@@ -10,8 +10,8 @@ PKGS=(
   libgnutls28-dev libpq-dev postgresql postgresql-client
   opencv-data
   openssl curl ca-certificates
-  python3 python3-numpy python3-pil python3-skimage python3-sklearn python3-opencv python3-nacl
-  valgrind wrk
+  python3 python3-numpy python3-pil python3-skimage python3-sklearn python3-opencv python3-nacl python3-yaml
+  valgrind wrk nginx systemd
 )
 # Node.js and npm run the API-spec lint and schema validation (tests/api);
 # Debian's packages only if the machine has no node of its own.
