@@ -50,9 +50,54 @@ lk_code lk_keyring_refresh(lk_keyring *kr, bool *changed, lk_error *err);
  * fsync directory) with mode 0600. new_id receives the new key id. */
 lk_code lk_keyring_rotate_file(const char *path, char new_id[LK_KEY_ID_MAX], lk_error *err);
 
-/* Copies the id of the current template key. */
+/* Copies the id of the current template key: the store's current data key
+ * when one is installed (lk_keyring_install), else the file's current key. */
 void lk_keyring_current_id(const lk_keyring *kr, char id[LK_KEY_ID_MAX]);
+/* Copies the id of the key file's current template key (the key-encryption
+ * key new data keys are wrapped under). */
+void lk_keyring_file_current_id(const lk_keyring *kr, char id[LK_KEY_ID_MAX]);
+/* Whether key_id is a template key of the file or an installed data key. */
 bool lk_keyring_has_key(const lk_keyring *kr, const char *key_id);
+
+/* ---- data keys (docs/key-file.md, "Data keys in the store") ----
+ * Templates are sealed under data keys that every replica shares through
+ * the store, kept there wrapped (XChaCha20-Poly1305) under a template key of
+ * the key file, which then serves as key-encryption key (KEK). A wrapped
+ * key is nonce (24) || encrypted key (32) || tag (16). */
+#define LK_WRAPPED_KEY_BYTES 72u
+
+typedef struct lk_wrapped_key {
+    char key_id[LK_KEY_ID_MAX]; /* "d" + 16 hex */
+    char kek_id[LK_KEY_ID_MAX]; /* the file's template key it is wrapped under */
+    const uint8_t *wrapped;     /* LK_WRAPPED_KEY_BYTES */
+    size_t len;
+    int64_t created_ms;
+    bool is_current;            /* the store's current sealing key (at most one) */
+} lk_wrapped_key;
+
+/* Makes a fresh random data key with a new id ("d" + 16 random hex, unlike
+ * any id the ring holds) and wraps it under the file's current key, whose
+ * id goes to kek_id. *wrapped is malloc'd (free()), *len is
+ * LK_WRAPPED_KEY_BYTES. The key is not installed: add it to the store, then
+ * install the store's list. */
+lk_code lk_keyring_wrap_new_key(const lk_keyring *kr, char key_id[LK_KEY_ID_MAX],
+                                char kek_id[LK_KEY_ID_MAX], uint8_t **wrapped, size_t *len,
+                                lk_error *err);
+/* Wraps the installed data key key_id afresh under the file's current key
+ * (after a new file key was added, so that the old one can be retired).
+ * LK_ERR_KEY if key_id is not an installed data key. */
+lk_code lk_keyring_rewrap_key(const lk_keyring *kr, const char *key_id,
+                              char kek_id[LK_KEY_ID_MAX], uint8_t **wrapped, size_t *len,
+                              lk_error *err);
+/* Unwraps keys[0..n) with the file's keys and installs them as the ring's
+ * data keys, replacing those installed before; the one marked is_current (if
+ * any) becomes the current sealing key, otherwise the file's current key is.
+ * All or nothing: LK_ERR_KEY, naming the key id, for a key whose KEK the
+ * file lacks, whose wrapping fails authentication, whose id is malformed or
+ * repeated or a file key's; also when more than one is current. On error
+ * the keys installed before stay. A list equal to the installed one costs
+ * no decryption. lk_keyring_refresh keeps the installed keys. */
+lk_code lk_keyring_install(lk_keyring *kr, const lk_wrapped_key *keys, size_t n, lk_error *err);
 
 /* ---- template records (docs/template-format.md) ----
  * A template is a vector of doubles (the model's projected, normalised

@@ -28,7 +28,7 @@
 extern "C" {
 #endif
 
-#define LK_STORE_SCHEMA_VERSION 1
+#define LK_STORE_SCHEMA_VERSION 2
 #define LK_SUBJECT_REF_MAX 256 /* bytes with NUL */
 
 typedef struct lk_store lk_store;
@@ -84,6 +84,29 @@ lk_code lk_store_template_ids_not_under_key(lk_store *s, const char *key_id, con
 lk_code lk_store_template_rekey(lk_store *s, const char *template_id, const char *old_key_id,
                                 const char *new_key_id, const uint8_t *record, size_t len,
                                 bool *replaced, lk_error *err);
+
+/* ---- template data keys (schema version 2; docs/store-schema.md) ----
+ * Data keys wrapped under a key of the key file (lk_keyring_wrap_new_key),
+ * shared by every process that opens the store. At most one is current. */
+
+/* Inserts a wrapped data key; with make_current it becomes the only current
+ * one, in the same transaction. LK_ERR_INVALID_ARGUMENT if key_id exists. */
+lk_code lk_store_template_keys_add(lk_store *s, const char *key_id, const char *kek_id,
+                                   const uint8_t *wrapped, size_t len, bool make_current,
+                                   lk_error *err);
+/* Calls fn for each data key, oldest first (created_ms, then key_id); k and
+ * k->wrapped are valid during the call only; fn may stop early. */
+lk_code lk_store_template_keys_list(lk_store *s, bool (*fn)(const lk_wrapped_key *k, void *ctx),
+                                    void *ctx, lk_error *err);
+/* Replaces a data key's wrapping only if it is still wrapped under
+ * old_kek_id (compare-and-swap); *replaced says whether it was. */
+lk_code lk_store_template_keys_rewrap(lk_store *s, const char *key_id, const char *old_kek_id,
+                                      const char *new_kek_id, const uint8_t *wrapped,
+                                      size_t len, bool *replaced, lk_error *err);
+/* Lists the store's data keys and installs them in kr (lk_keyring_install):
+ * afterwards kr opens records under any of them and seals under the
+ * store's current one. On error kr keeps the keys it had. */
+lk_code lk_store_sync_keys(lk_store *s, lk_keyring *kr, lk_error *err);
 
 /* ---- API keys ---- */
 enum {

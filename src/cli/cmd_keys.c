@@ -1,4 +1,5 @@
-/* likeness keys: the key file (init, rotate with re-sealing of every stored
+/* likeness keys: the key file (init), key rotation (a new data key in the
+ * store, or with --master a new key-file key, then re-sealing of every stored
  * template) and API keys (create, list, revoke). Key material is never
  * printed; an API-key token is printed once, when it is made. */
 #include <errno.h>
@@ -24,8 +25,8 @@ static void usage_main(FILE *f)
     fprintf(f, "usage: likeness keys SUBCOMMAND [OPTIONS]\n\n"
                "  init         create the key file (template key, API-key hashing key, audit\n"
                "               signing seed); never overwrites one\n"
-               "  rotate       add a new current template key and re-seal every stored\n"
-               "               template under it\n"
+               "  rotate       make a new current data key in the store and re-seal every\n"
+               "               stored template under it (--master: rotate the key file's key)\n"
                "  api-create   create an API key; prints its token once\n"
                "  api-list     list API keys as JSON Lines (never their hashes)\n"
                "  api-revoke   revoke an API key\n\n"
@@ -45,17 +46,28 @@ static void usage_rotate(FILE *f)
 {
     fprintf(f,
             "usage: likeness keys rotate [--config FILE | --store URL --key-file PATH]\n"
-            "                            [--batch N]\n\n"
-            "Adds a new template key to the key file and makes it current (older keys stay),\n"
-            "then re-seals every stored template under it, in passes of up to N records,\n"
-            "until none is left under another key; records that a running service writes\n"
-            "meanwhile under the old key are picked up by the next pass (the service loads\n"
-            "the new key file by itself). Each record is replaced only if no one changed it\n"
-            "in between. Records that fail to open are counted, reported, audited as\n"
-            "template_refused and left as they are. Progress goes to stderr; the counts are\n"
-            "printed as JSON. One key_rotation audit record is appended.\n\n"
-            "Exit status: 0 when every record is under the new key, 1 if some failed.\n\n"
+            "                            [--master] [--batch N]\n\n"
+            "Makes a new random data key, stores it in the store wrapped under the key\n"
+            "file's current key and makes it the store's current key (the key file is left\n"
+            "as it is), then re-seals every stored template under it, in passes of up to N\n"
+            "records, until none is left under another key. Every service replica sharing\n"
+            "the store picks the new key up within 2 seconds, whatever copy of the key file\n"
+            "it has; records that they write meanwhile under the old key are caught by a\n"
+            "last pass. Each record is replaced only if no one changed it in between.\n"
+            "Records that fail to open are counted, reported, audited as template_refused\n"
+            "and left as they are. Progress goes to stderr; the counts are printed as JSON.\n"
+            "One key_rotation audit record is appended.\n\n"
+            "With --master, rotates the key file's own key instead: adds a new template key\n"
+            "to the key file (older keys stay) and makes it current, wraps every data key of\n"
+            "the store afresh under it, then re-seals as above (records still sealed under a\n"
+            "key of the file move to the store's current data key, or to the new file key if\n"
+            "the store has none). Afterwards give every replica the new key file: a replica\n"
+            "whose copy lacks the new key keeps the data keys it has loaded but cannot load\n"
+            "them again (e.g. after a restart). Once every replica has the new file, the old\n"
+            "file key can be removed from it.\n\n"
+            "Exit status: 0 when every record is under the current key, 1 if some failed.\n\n"
             "options:\n" CLI_SVC_HELP
+            "  --master           rotate the key file's key (see above)\n"
             "  --batch N          records per store query (default 500)\n"
             "  -h, --help         this help\n");
 }
@@ -137,6 +149,7 @@ static void print_json_line(cJSON *j)
 typedef struct opts {
     cli_svc_opts svc;
     const char *name, *scopes, *batch;
+    bool master;
     const char *pos[4];
     int npos;
 } opts;
@@ -155,6 +168,10 @@ static int parse_opts(int argc, char **argv, opts *o, const char *extra,
         if (!strcmp(a, "-h") || !strcmp(a, "--help")) {
             usage(stdout);
             return CLI_OK;
+        }
+        if (!strcmp(a, "--master") && strstr(extra, "master")) {
+            o->master = true;
+            continue;
         }
         const char **slot = NULL;
         if (!strcmp(a, "--name") && strstr(extra, "name"))
@@ -270,10 +287,78 @@ static void audit_refused(lk_store *st, const lk_keyring *kr, unsigned interval,
         cli_error(&err);
 }
 
+/* The data keys' ids and KEK ids, for re-wrapping. */
+typedef struct kek_list {
+    char (*ids)[2][LK_KEY_ID_MAX];
+    size_t n, cap;
+    bool nomem;
+} kek_list;
+
+static bool collect_kek(const lk_wrapped_key *k, void *ctx)
+{
+    kek_list *l = ctx;
+    if (l->n == l->cap) {
+        size_t cap = l->cap ? 2 * l->cap : 8;
+        void *p = realloc(l->ids, cap * sizeof *l->ids);
+        if (!p) {
+            l->nomem = true;
+            return false;
+        }
+        l->ids = p;
+        l->cap = cap;
+    }
+    memcpy(l->ids[l->n][0], k->key_id, LK_KEY_ID_MAX);
+    memcpy(l->ids[l->n][1], k->kek_id, LK_KEY_ID_MAX);
+    l->n++;
+    return true;
+}
+
+/* --master: wraps every data key not yet under the file's current key
+ * afresh under it; *count gets how many were. */
+static lk_code rewrap_all(cli_svc *s, uint64_t *count, lk_error *err)
+{
+    *count = 0;
+    char kek[LK_KEY_ID_MAX];
+    lk_keyring_file_current_id(s->keys, kek);
+    kek_list l = {0};
+    lk_code c = lk_store_template_keys_list(s->store, collect_kek, &l, err);
+    if (c == LK_OK && l.nomem)
+        c = lk_error_set(err, LK_ERR_NOMEM, "out of memory listing the data keys");
+    for (size_t i = 0; c == LK_OK && i < l.n; i++) {
+        if (!strcmp(l.ids[i][1], kek))
+            continue;
+        uint8_t *w = NULL;
+        size_t wlen = 0;
+        char got[LK_KEY_ID_MAX];
+        c = lk_keyring_rewrap_key(s->keys, l.ids[i][0], got, &w, &wlen, err);
+        bool replaced = false;
+        if (c == LK_OK)
+            c = lk_store_template_keys_rewrap(s->store, l.ids[i][0], l.ids[i][1], got, w, wlen,
+                                              &replaced, err);
+        free(w);
+        if (c == LK_OK && !replaced)
+            c = lk_error_set(err, LK_ERR_BUSY, "data key %s was re-wrapped by someone else "
+                             "meanwhile; run `likeness keys rotate --master` again",
+                             l.ids[i][0]);
+        if (c == LK_OK)
+            (*count)++;
+    }
+    free(l.ids);
+    /* Load the new wrappings: this also proves that they open. */
+    if (c == LK_OK)
+        c = lk_store_sync_keys(s->store, s->keys, err);
+    return c;
+}
+
+/* How long a running service may go on sealing under the previous key: it
+ * syncs the data keys at most every 2 seconds (src/server/handlers.c), plus
+ * a request's own time. The rotation re-checks the store after this. */
+#define PICKUP_MS 2500
+
 static int keys_rotate(int argc, char **argv)
 {
     opts o;
-    int r = parse_opts(argc, argv, &o, "batch", usage_rotate);
+    int r = parse_opts(argc, argv, &o, "batch master", usage_rotate);
     if (r >= 0)
         return r;
     if (o.npos) {
@@ -292,36 +377,58 @@ static int keys_rotate(int argc, char **argv)
         batch = (size_t)b;
     }
     cli_svc s;
-    if (cli_svc_open(&s, &o.svc, true, false) != CLI_OK)
+    if (cli_svc_open(&s, &o.svc, true, true) != CLI_OK)
         return CLI_FAIL;
     lk_error err;
-    char new_id[LK_KEY_ID_MAX], old_id[LK_KEY_ID_MAX] = "";
-    /* The id current before rotating, for the report (best effort). */
-    lk_keyring *before = lk_keyring_load(s.cfg.key_file_path, &err);
-    if (!before) {
+    char new_id[LK_KEY_ID_MAX], old_id[LK_KEY_ID_MAX] = "", kek_id[LK_KEY_ID_MAX] = "";
+    uint64_t rewrapped = 0;
+    if (lk_store_sync_keys(s.store, s.keys, &err) != LK_OK) {
         cli_error(&err);
         cli_svc_close(&s);
         return CLI_FAIL;
     }
-    lk_keyring_current_id(before, old_id);
-    lk_keyring_free(before);
-    if (lk_keyring_rotate_file(s.cfg.key_file_path, new_id, &err) != LK_OK) {
-        cli_error(&err);
-        cli_svc_close(&s);
-        return CLI_FAIL;
+    lk_keyring_current_id(s.keys, old_id);
+    if (o.master) {
+        if (lk_keyring_rotate_file(s.cfg.key_file_path, new_id, &err) != LK_OK ||
+            lk_keyring_refresh(s.keys, NULL, &err) != LK_OK) {
+            cli_error(&err);
+            cli_svc_close(&s);
+            return CLI_FAIL;
+        }
+        fprintf(stderr, "likeness: key file %s: new current key %s\n", s.cfg.key_file_path,
+                new_id);
+        lk_code c = rewrap_all(&s, &rewrapped, &err);
+        if (c != LK_OK) {
+            cli_error(&err);
+            cli_svc_close(&s);
+            return CLI_FAIL;
+        }
+        fprintf(stderr, "likeness: %" PRIu64 " data key(s) wrapped again under %s\n", rewrapped,
+                new_id);
+        lk_keyring_file_current_id(s.keys, kek_id);
+    } else {
+        uint8_t *w = NULL;
+        size_t wlen = 0;
+        lk_code c = lk_keyring_wrap_new_key(s.keys, new_id, kek_id, &w, &wlen, &err);
+        if (c == LK_OK)
+            c = lk_store_template_keys_add(s.store, new_id, kek_id, w, wlen, true, &err);
+        free(w);
+        if (c == LK_OK)
+            c = lk_store_sync_keys(s.store, s.keys, &err);
+        if (c != LK_OK) {
+            cli_error(&err);
+            cli_svc_close(&s);
+            return CLI_FAIL;
+        }
+        fprintf(stderr, "likeness: new data key %s (wrapped under %s of the key file) is "
+                        "current in the store\n", new_id, kek_id);
     }
-    fprintf(stderr, "likeness: key file %s: new current key %s\n", s.cfg.key_file_path, new_id);
-    s.keys = lk_keyring_load(s.cfg.key_file_path, &err);
-    if (!s.keys) {
-        cli_error(&err);
-        cli_svc_close(&s);
-        return CLI_FAIL;
-    }
+    int64_t t_current = now_ms();
     char cur[LK_KEY_ID_MAX];
     lk_keyring_current_id(s.keys, cur);
-    if (strcmp(cur, new_id) != 0) /* another rotation finished in between: follow it */
-        fprintf(stderr, "likeness: the key file was rotated again meanwhile; re-sealing under "
-                        "%s\n", cur);
+    if (!o.master && strcmp(cur, new_id) != 0) /* another rotation finished in between */
+        fprintf(stderr, "likeness: another rotation made %s current meanwhile; re-sealing "
+                        "under it\n", cur);
     char caller[LK_AUDIT_TEXT_MAX];
     login_name(caller, sizeof caller);
 
@@ -329,6 +436,7 @@ static int keys_rotate(int argc, char **argv)
     idset failed = {0}, gone = {0};
     uint64_t resealed = 0, n_failed = 0, raced = 0;
     unsigned passes = 0;
+    bool graced = false;
     int rc = CLI_OK;
     if (!ids) {
         cli_errorf("out of memory");
@@ -402,6 +510,17 @@ static int keys_rotate(int argc, char **argv)
                         "meanwhile, %" PRIu64 " failed so far\n",
                 passes, pass_done, pass_raced, n_failed);
         again = pass_done > 0 || pass_raced > 0;
+        if (!again && !graced) {
+            /* Replicas may still seal under the previous key until they
+             * sync: wait that long, then look once more. */
+            graced = true;
+            int64_t wait = t_current + PICKUP_MS - now_ms();
+            if (wait > 0) {
+                struct timespec ts = {(time_t)(wait / 1000), (long)(wait % 1000) * 1000000L};
+                nanosleep(&ts, NULL);
+                again = true;
+            }
+        }
         if (again && passes >= 1000) {
             cli_errorf("records keep changing under the old key after %u passes; stopping "
                        "(run `likeness keys rotate` again later)", passes);
@@ -423,6 +542,11 @@ static int keys_rotate(int argc, char **argv)
     cJSON *j = cJSON_CreateObject();
     cJSON_AddStringToObject(j, "previous_key_id", old_id);
     cJSON_AddStringToObject(j, "key_id", cur);
+    cJSON_AddStringToObject(j, "kek_id", kek_id);
+    if (o.master) {
+        cJSON_AddStringToObject(j, "master_key_id", new_id);
+        cJSON_AddNumberToObject(j, "rewrapped", (double)rewrapped);
+    }
     cJSON_AddNumberToObject(j, "resealed", (double)resealed);
     cJSON_AddNumberToObject(j, "failed", (double)n_failed);
     cJSON_AddNumberToObject(j, "gone", (double)gone.n);

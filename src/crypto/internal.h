@@ -2,8 +2,11 @@
 #ifndef LIKENESS_CRYPTO_INTERNAL_H
 #define LIKENESS_CRYPTO_INTERNAL_H
 
+#include <pthread.h>
 #include <stddef.h>
 #include <stdint.h>
+#include <sys/types.h>
+#include <time.h>
 
 #include "likeness/crypto.h"
 
@@ -27,6 +30,38 @@ typedef struct lk_keyset {
 #define KS_SEED_OFF 32u
 #define KS_AUDIT_SK_OFF 64u
 #define KS_TEMPLATE_OFF 128u
+
+/* The data keys installed from the store (lk_keyring_install), unwrapped.
+ * Kept apart from the file's key set so that re-reading the file leaves
+ * them in place. */
+typedef struct lk_dataset {
+    size_t n;
+    ptrdiff_t current;              /* index of the store's current key; -1: none */
+    char (*ids)[LK_KEY_ID_MAX];
+    char (*kek_ids)[LK_KEY_ID_MAX];
+    uint8_t *secret;                /* n keys of 32 bytes, sodium_malloc'd, read-only */
+    uint8_t digest[32];             /* of the listing it was made from (unchanged: no work) */
+} lk_dataset;
+
+struct lk_keyring {
+    pthread_rwlock_t lock; /* readers: every key use; writer: the swaps of ks and ds */
+    char *path;
+    lk_keyset *ks;
+    lk_dataset *ds;        /* NULL until data keys are installed */
+    /* identity of the file last read, for lk_keyring_refresh */
+    dev_t dev;
+    ino_t ino;
+    off_t size;
+    struct timespec mtim;
+};
+
+void lk__dataset_free(lk_dataset *ds);
+
+/* With the read lock held: the template key (file or data key) with this
+ * id, or NULL; and the current sealing key: the store's current data key if
+ * one is installed, else the file's current key. */
+const uint8_t *lk__keyring_find_locked(const lk_keyring *kr, const char *id, size_t id_len);
+void lk__keyring_current_locked(const lk_keyring *kr, const char **id, const uint8_t **key);
 
 /* Takes the key ring's read lock and returns its key set; release with
  * lk__keyring_unlock. */

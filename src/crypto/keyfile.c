@@ -17,17 +17,6 @@
 #define KEYFILE_MAX_BYTES (1u << 20)
 #define KEYFILE_MAGIC "likeness-keys"
 
-struct lk_keyring {
-    pthread_rwlock_t lock; /* readers: every key use; writer: refresh's swap */
-    char *path;
-    lk_keyset *ks;
-    /* identity of the file last read, for lk_keyring_refresh */
-    dev_t dev;
-    ino_t ino;
-    off_t size;
-    struct timespec mtim;
-};
-
 int lk__sodium_ready(void)
 {
     return sodium_init() >= 0;
@@ -65,6 +54,28 @@ const uint8_t *lk__keyset_find(const lk_keyset *ks, const char *id, size_t id_le
         if (strlen(ks->ids[i]) == id_len && !memcmp(ks->ids[i], id, id_len))
             return ks->secret + KS_TEMPLATE_OFF + LK_KEY_BYTES * i;
     return NULL;
+}
+
+const uint8_t *lk__keyring_find_locked(const lk_keyring *kr, const char *id, size_t id_len)
+{
+    const lk_dataset *ds = kr->ds;
+    if (ds)
+        for (size_t i = 0; i < ds->n; i++)
+            if (strlen(ds->ids[i]) == id_len && !memcmp(ds->ids[i], id, id_len))
+                return ds->secret + LK_KEY_BYTES * i;
+    return lk__keyset_find(kr->ks, id, id_len);
+}
+
+void lk__keyring_current_locked(const lk_keyring *kr, const char **id, const uint8_t **key)
+{
+    const lk_dataset *ds = kr->ds;
+    if (ds && ds->current >= 0) {
+        *id = ds->ids[ds->current];
+        *key = ds->secret + LK_KEY_BYTES * (size_t)ds->current;
+        return;
+    }
+    *id = kr->ks->ids[kr->ks->current];
+    *key = kr->ks->secret + KS_TEMPLATE_OFF + LK_KEY_BYTES * kr->ks->current;
 }
 
 static void keyset_free(lk_keyset *ks)
@@ -555,6 +566,7 @@ void lk_keyring_free(lk_keyring *kr)
     if (!kr)
         return;
     keyset_free(kr->ks);
+    lk__dataset_free(kr->ds);
     pthread_rwlock_destroy(&kr->lock);
     free(kr->path);
     free(kr);
@@ -716,6 +728,16 @@ lk_code lk_keyring_rotate_file(const char *path, char new_id[LK_KEY_ID_MAX], lk_
 
 void lk_keyring_current_id(const lk_keyring *kr, char id[LK_KEY_ID_MAX])
 {
+    const char *kid;
+    const uint8_t *key;
+    (void)lk__keyring_acquire(kr);
+    lk__keyring_current_locked(kr, &kid, &key);
+    memcpy(id, kid, LK_KEY_ID_MAX);
+    lk__keyring_release(kr);
+}
+
+void lk_keyring_file_current_id(const lk_keyring *kr, char id[LK_KEY_ID_MAX])
+{
     const lk_keyset *ks = lk__keyring_acquire(kr);
     memcpy(id, ks->ids[ks->current], LK_KEY_ID_MAX);
     lk__keyring_release(kr);
@@ -725,8 +747,8 @@ bool lk_keyring_has_key(const lk_keyring *kr, const char *key_id)
 {
     if (!kr || !key_id)
         return false;
-    const lk_keyset *ks = lk__keyring_acquire(kr);
-    bool has = lk__keyset_find(ks, key_id, strlen(key_id)) != NULL;
+    (void)lk__keyring_acquire(kr);
+    bool has = lk__keyring_find_locked(kr, key_id, strlen(key_id)) != NULL;
     lk__keyring_release(kr);
     return has;
 }

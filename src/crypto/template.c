@@ -187,8 +187,9 @@ static lk_code open_raw(const rec_header *h, const uint8_t *rec, const uint8_t *
 
 static lk_code unknown_key(const rec_header *h, lk_error *err)
 {
-    return lk_error_set(err, LK_ERR_KEY, "template record is sealed with key id %.*s, which the "
-                        "key file does not hold; restore the key file that has it",
+    return lk_error_set(err, LK_ERR_KEY, "template record is sealed with key id %.*s, which "
+                        "neither the key file nor the data keys loaded from the store hold; "
+                        "restore the key file (or the store) that has it",
                         (int)h->key_id_len, h->key_id);
 }
 
@@ -222,10 +223,12 @@ lk_code lk_template_seal(const lk_keyring *kr, const lk_template_binding *b, con
     }
     uint8_t digest[32];
     config_digest(b->feature_config, digest);
-    const lk_keyset *ks = lk__keyring_acquire(kr);
-    const char *kid = ks->ids[ks->current];
-    c = seal_raw(kid, ks->secret + KS_TEMPLATE_OFF + LK_KEY_BYTES * ks->current, b->template_id,
-                 b->model_id, digest, (uint32_t)dim, pt, record, len, err);
+    const char *kid;
+    const uint8_t *key;
+    (void)lk__keyring_acquire(kr);
+    lk__keyring_current_locked(kr, &kid, &key);
+    c = seal_raw(kid, key, b->template_id, b->model_id, digest, (uint32_t)dim, pt, record, len,
+                 err);
     if (c == LK_OK && key_id_out)
         memcpy(key_id_out, kid, LK_KEY_ID_MAX);
     lk__keyring_release(kr);
@@ -266,8 +269,8 @@ lk_code lk_template_open(const lk_keyring *kr, const lk_template_binding *b,
     if (h.dim > max_dim)
         return lk_error_set(err, LK_ERR_INVALID_ARGUMENT, "template has %u values, more than "
                             "the %zu the caller has room for", h.dim, max_dim);
-    const lk_keyset *ks = lk__keyring_acquire(kr);
-    const uint8_t *key = lk__keyset_find(ks, h.key_id, h.key_id_len);
+    (void)lk__keyring_acquire(kr);
+    const uint8_t *key = lk__keyring_find_locked(kr, h.key_id, h.key_id_len);
     if (!key)
         c = unknown_key(&h, err);
     else
@@ -330,17 +333,18 @@ lk_code lk_template_reseal(const lk_keyring *kr, const char *template_id, const 
     char mid[33];
     memcpy(mid, h.model_id, 32);
     mid[32] = '\0';
-    const lk_keyset *ks = lk__keyring_acquire(kr);
-    const uint8_t *key = lk__keyset_find(ks, h.key_id, h.key_id_len);
+    (void)lk__keyring_acquire(kr);
+    const uint8_t *key = lk__keyring_find_locked(kr, h.key_id, h.key_id_len);
     if (!key)
         c = unknown_key(&h, err);
     else
         c = open_raw(&h, record, key, pt, err);
     /* The model id and digest are authentic now: carry them over unchanged. */
     if (c == LK_OK) {
-        const char *kid = ks->ids[ks->current];
-        c = seal_raw(kid, ks->secret + KS_TEMPLATE_OFF + LK_KEY_BYTES * ks->current,
-                     template_id, mid, h.digest, h.dim, pt, out, out_len, err);
+        const char *kid;
+        const uint8_t *ckey;
+        lk__keyring_current_locked(kr, &kid, &ckey);
+        c = seal_raw(kid, ckey, template_id, mid, h.digest, h.dim, pt, out, out_len, err);
         if (c == LK_OK && new_key_id)
             memcpy(new_key_id, kid, LK_KEY_ID_MAX);
     }

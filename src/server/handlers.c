@@ -285,6 +285,7 @@ lk_code srv_core_open(lk_server *s, lk_error *err)
 {
     const lk_config *c = &s->cfg;
     pthread_mutex_init(&s->kc.mu, NULL);
+    pthread_mutex_init(&s->key_sync_mu, NULL);
     s->model = lk_model_load(c->model_file, err);
     if (!s->model)
         return err ? err->code : LK_ERR_MODEL_FORMAT;
@@ -307,6 +308,12 @@ lk_code srv_core_open(lk_server *s, lk_error *err)
     s->store = lk_store_open(c->store_url, err);
     if (!s->store)
         return err ? err->code : LK_ERR_STORE;
+    /* The data keys every replica shares (docs/key-file.md): without them
+     * the templates sealed under them cannot be opened. */
+    rc = lk_store_sync_keys(s->store, s->keys, err);
+    if (rc)
+        return rc;
+    s->key_sync_at = srv_now();
     srv_log("model %s (target FMR %g, threshold %.6f), store schema v%d, %llu templates",
             lk_model_id(s->model), s->target_fmr, s->threshold, lk_store_schema_version(s->store),
             (unsigned long long)lk_store_template_count(s->store));
@@ -331,6 +338,7 @@ void srv_core_close(lk_server *s)
     s->engine = NULL;
     s->model = NULL;
     pthread_mutex_destroy(&s->kc.mu);
+    pthread_mutex_destroy(&s->key_sync_mu);
 }
 
 /* ---- audit ---- */
@@ -585,6 +593,36 @@ static bool analyse(lk_server *s, srv_request *r, srv_worker_state *w, const uin
     return true;
 }
 
+/* Seconds between syncs of the data keys from the store: another replica's
+ * `likeness keys rotate` reaches this one within this time (common practice:
+ * short enough for a rotation, cheap enough to do on the request path). */
+#define KEY_SYNC_INTERVAL 2.0
+
+/* Re-reads the key file if it changed and, at most every KEY_SYNC_INTERVAL
+ * seconds or when forced, the store's data keys. One sync at a time: a
+ * request that finds one running goes on with the keys in place, unless
+ * forced, which waits for it and syncs again. */
+static void sync_keys(lk_server *s, bool force)
+{
+    lk_keyring_refresh(s->keys, NULL, NULL);
+    if (force) {
+        pthread_mutex_lock(&s->key_sync_mu);
+    } else {
+        if (pthread_mutex_trylock(&s->key_sync_mu) != 0)
+            return;
+        if (srv_now() - s->key_sync_at < KEY_SYNC_INTERVAL) {
+            pthread_mutex_unlock(&s->key_sync_mu);
+            return;
+        }
+    }
+    lk_error e;
+    if (lk_store_sync_keys(s->store, s->keys, &e) != LK_OK)
+        srv_log("data keys: sync from the store failed: %s; the keys already loaded stay in use",
+                e.message);
+    s->key_sync_at = srv_now();
+    pthread_mutex_unlock(&s->key_sync_mu);
+}
+
 /* Opens a stored template into w->proj_other. On refusal fills the reply. */
 static bool load_template(lk_server *s, srv_request *r, srv_worker_state *w, const char *id,
                           lk_template_meta *meta)
@@ -604,7 +642,7 @@ static bool load_template(lk_server *s, srv_request *r, srv_worker_state *w, con
         srv_problem(r, "internal-error", NULL);
         return false;
     }
-    lk_keyring_refresh(s->keys, NULL, NULL);
+    sync_keys(s, false);
     lk_template_binding b;
     memset(&b, 0, sizeof b);
     snprintf(b.template_id, sizeof b.template_id, "%.32s", id);
@@ -612,6 +650,11 @@ static bool load_template(lk_server *s, srv_request *r, srv_worker_state *w, con
     b.feature_config = lk_model_feature_config(s->model);
     size_t dim = 0;
     rc = lk_template_open(s->keys, &b, rec, len, w->proj_other, w->k, &dim, &e);
+    if (rc == LK_ERR_KEY) {
+        /* Another replica may have rotated a moment ago: fetch its new key. */
+        sync_keys(s, true);
+        rc = lk_template_open(s->keys, &b, rec, len, w->proj_other, w->k, &dim, &e);
+    }
     free(rec);
     if (rc == LK_OK && dim != w->k)
         rc = lk_error_set(&e, LK_ERR_TEMPLATE_MISMATCH, "template has %zu values, model needs %zu",
@@ -829,7 +872,7 @@ static void handle_enrol(lk_server *s, srv_request *r, srv_worker_state *w)
     b.feature_config = lk_model_feature_config(s->model);
     uint8_t *rec = NULL;
     size_t len = 0;
-    lk_keyring_refresh(s->keys, NULL, NULL);
+    sync_keys(s, false);
     if (lk_template_seal(s->keys, &b, w->acc, w->k, &rec, &len, meta.key_id, &e) ||
         lk_store_template_put(s->store, &meta, rec, len, &e)) {
         free(rec);

@@ -54,6 +54,10 @@ struct lk_server {
     srv_metrics *metrics;
     srv_limiter *limiter;
     srv_key_cache kc;
+    /* When the data keys were last synced from the store (srv_now()
+     * seconds); replicas pick up another's key rotation through it. */
+    pthread_mutex_t key_sync_mu;
+    double key_sync_at;
     int stop_pipe[2];
     atomic_int inflight;
     atomic_bool draining;

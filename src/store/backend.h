@@ -35,6 +35,15 @@ typedef struct lk_store_backend {
                               const char *new_key_id, const uint8_t *record, size_t len,
                               bool *replaced, lk_error *err);
 
+    lk_code (*template_keys_add)(void *h, const char *key_id, const char *kek_id,
+                                 const uint8_t *wrapped, size_t len, bool make_current,
+                                 lk_error *err);
+    lk_code (*template_keys_list)(void *h, bool (*fn)(const lk_wrapped_key *k, void *ctx),
+                                  void *ctx, lk_error *err);
+    lk_code (*template_keys_rewrap)(void *h, const char *key_id, const char *old_kek_id,
+                                    const char *new_kek_id, const uint8_t *wrapped, size_t len,
+                                    bool *replaced, lk_error *err);
+
     lk_code (*apikey_put)(void *h, const lk_apikey_meta *k, lk_error *err);
     lk_code (*apikey_get)(void *h, const char *id, lk_apikey_meta *k, lk_error *err);
     lk_code (*apikey_revoke)(void *h, const char *id, int64_t now_ms, lk_error *err);

@@ -444,12 +444,22 @@ static const char *const migrations[] = {
     "  public_key BYTEA NOT NULL CHECK (octet_length(public_key) = 32),"
     "  signature BYTEA NOT NULL CHECK (octet_length(signature) = 64),"
     "  time_ms BIGINT NOT NULL);",
+    /* 1 -> 2: data keys, wrapped under a key of the key file. The partial
+     * unique index lets at most one row be current. */
+    "CREATE TABLE template_keys("
+    "  key_id TEXT COLLATE \"C\" PRIMARY KEY NOT NULL,"
+    "  kek_id TEXT COLLATE \"C\" NOT NULL,"
+    "  wrapped BYTEA NOT NULL CHECK (octet_length(wrapped) > 0),"
+    "  created_ms BIGINT NOT NULL,"
+    "  is_current BOOLEAN NOT NULL DEFAULT FALSE);"
+    "CREATE UNIQUE INDEX template_keys_one_current ON template_keys(is_current)"
+    "  WHERE is_current;",
 };
 _Static_assert(sizeof migrations / sizeof migrations[0] == LK_STORE_SCHEMA_VERSION,
                "one migration per schema version");
 
-static const char *const our_tables[] = {"likeness_schema", "templates", "api_keys",
-                                         "audit_records", "audit_checkpoints"};
+static const char *const our_tables[] = {"likeness_schema", "templates",     "api_keys",
+                                         "audit_records",   "audit_checkpoints", "template_keys"};
 #define N_TABLES (sizeof our_tables / sizeof our_tables[0])
 
 /* Whether a table of that name is visible on the search path. */
@@ -891,6 +901,108 @@ static lk_code pg_template_rekey(void *h, const char *id, const char *old_key_id
     return rc;
 }
 
+/* ---- template data keys ---- */
+
+typedef struct tkadd {
+    const char *key_id, *kek_id;
+    const uint8_t *wrapped;
+    size_t len;
+    bool make_current;
+} tkadd;
+
+static lk_code tkadd_fn(pgop *o, void *arg, lk_error *err)
+{
+    const tkadd *a = arg;
+    /* Adds serialise on the table (EXCLUSIVE blocks other writers, not
+     * readers), so that two rotations cannot both clear the current mark
+     * and then collide on the one-current index. */
+    lk_code rc = q_cmd(o, "LOCK TABLE template_keys IN EXCLUSIVE MODE", NULL, err,
+                       "cannot lock the data keys");
+    if (rc == LK_OK && a->make_current)
+        rc = q_cmd(o, "UPDATE template_keys SET is_current = FALSE WHERE is_current", NULL, err,
+                   "cannot clear the current data key");
+    if (rc != LK_OK)
+        return rc;
+    params q = {0};
+    p_text(&q, a->key_id);
+    p_text(&q, a->kek_id);
+    p_bytes(&q, a->wrapped, a->len);
+    p_i64(&q, lk_store_now_ms());
+    p_text(&q, a->make_current ? "true" : "false");
+    rc = q_cmd(o,
+               "INSERT INTO template_keys(key_id, kek_id, wrapped, created_ms, is_current)"
+               " VALUES($1, $2, $3::bytea, $4::bigint, $5::boolean)",
+               &q, err, "cannot insert a data key");
+    if (rc != LK_OK && is_state(o, "23505"))
+        rc = lk_error_set(err, LK_ERR_INVALID_ARGUMENT, "data key %s already exists", a->key_id);
+    return rc;
+}
+
+static lk_code pg_template_keys_add(void *h, const char *key_id, const char *kek_id,
+                                    const uint8_t *wrapped, size_t len, bool make_current,
+                                    lk_error *err)
+{
+    tkadd a = {key_id, kek_id, wrapped, len, make_current};
+    return run(h, "BEGIN", tkadd_fn, &a, err);
+}
+
+typedef struct tklist {
+    bool (*fn)(const lk_wrapped_key *k, void *ctx);
+    void *ctx;
+} tklist;
+
+static lk_code tklist_fn(pgop *o, void *arg, lk_error *err)
+{
+    tklist *a = arg;
+    PGresult *r = q_exec(o,
+                         "SELECT key_id, kek_id, wrapped, created_ms, is_current"
+                         " FROM template_keys ORDER BY created_ms, key_id",
+                         NULL, err, "cannot list the data keys");
+    if (!r)
+        return LK_ERR_STORE;
+    o->no_retry = true;
+    for (int i = 0; i < PQntuples(r); i++) {
+        lk_wrapped_key k;
+        memset(&k, 0, sizeof k);
+        g_text(r, i, 0, k.key_id, sizeof k.key_id);
+        g_text(r, i, 1, k.kek_id, sizeof k.kek_id);
+        k.wrapped = (const uint8_t *)PQgetvalue(r, i, 2);
+        k.len = (size_t)PQgetlength(r, i, 2);
+        k.created_ms = g_i64(r, i, 3);
+        /* boolean in binary: one byte, 1 for true */
+        k.is_current = PQgetlength(r, i, 4) == 1 && PQgetvalue(r, i, 4)[0] == 1;
+        if (!a->fn(&k, a->ctx))
+            break;
+    }
+    PQclear(r);
+    return LK_OK;
+}
+
+static lk_code pg_template_keys_list(void *h, bool (*fn)(const lk_wrapped_key *k, void *ctx),
+                                     void *ctx, lk_error *err)
+{
+    tklist a = {fn, ctx};
+    return run(h, NULL, tklist_fn, &a, err);
+}
+
+static lk_code pg_template_keys_rewrap(void *h, const char *key_id, const char *old_kek_id,
+                                       const char *new_kek_id, const uint8_t *wrapped,
+                                       size_t len, bool *replaced, lk_error *err)
+{
+    /* The KEK condition makes this a compare-and-swap. */
+    wcount a = {"UPDATE template_keys SET kek_id = $1, wrapped = $2::bytea"
+                " WHERE key_id = $3 AND kek_id = $4",
+                "cannot re-wrap a data key", {0}, 0};
+    p_text(&a.q, new_kek_id);
+    p_bytes(&a.q, wrapped, len);
+    p_text(&a.q, key_id);
+    p_text(&a.q, old_kek_id);
+    lk_code rc = run(h, "BEGIN", wcount_fn, &a, err);
+    if (rc == LK_OK)
+        *replaced = a.rows == 1;
+    return rc;
+}
+
 /* ---- API keys ---- */
 
 typedef struct kput {
@@ -1324,6 +1436,9 @@ const lk_store_backend lk_store_postgres_backend = {
     .template_count = pg_template_count,
     .template_ids_not_under_key = pg_template_ids_not_under_key,
     .template_rekey = pg_template_rekey,
+    .template_keys_add = pg_template_keys_add,
+    .template_keys_list = pg_template_keys_list,
+    .template_keys_rewrap = pg_template_keys_rewrap,
     .apikey_put = pg_apikey_put,
     .apikey_get = pg_apikey_get,
     .apikey_revoke = pg_apikey_revoke,

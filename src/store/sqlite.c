@@ -77,6 +77,17 @@ static const char *const migrations[] = {
     "  time_ms INTEGER NOT NULL);"
     "PRAGMA application_id = 1280003667;" /* APPLICATION_ID in decimal */
     "PRAGMA user_version = 1;",
+    /* 1 -> 2: data keys, wrapped under a key of the key file. The partial
+     * unique index lets at most one row be current. */
+    "CREATE TABLE template_keys("
+    "  key_id TEXT PRIMARY KEY NOT NULL,"
+    "  kek_id TEXT NOT NULL,"
+    "  wrapped BLOB NOT NULL CHECK (length(wrapped) > 0),"
+    "  created_ms INTEGER NOT NULL,"
+    "  is_current INTEGER NOT NULL DEFAULT 0 CHECK (is_current IN (0, 1)));"
+    "CREATE UNIQUE INDEX template_keys_one_current ON template_keys(is_current)"
+    "  WHERE is_current = 1;"
+    "PRAGMA user_version = 2;",
 };
 _Static_assert(sizeof migrations / sizeof migrations[0] == LK_STORE_SCHEMA_VERSION,
                "one migration per schema version");
@@ -487,6 +498,122 @@ static lk_code sq_template_rekey(void *h, const char *id, const char *old_key_id
     sqlite3_bind_text(st, 4, old_key_id, -1, SQLITE_STATIC);
     if (sqlite3_step(st) != SQLITE_DONE)
         rc = db_error(s, err, "cannot re-key a template");
+    else
+        *replaced = sqlite3_changes(s->db) == 1;
+    sqlite3_finalize(st);
+    return rc;
+}
+
+/* ---- template data keys ---- */
+
+static lk_code write_txn(sq *s, lk_code (*fn)(sq *, void *, lk_error *), void *arg,
+                         lk_error *err);
+
+typedef struct tkadd {
+    const char *key_id, *kek_id;
+    const uint8_t *wrapped;
+    size_t len;
+    bool make_current;
+} tkadd;
+
+static lk_code step_done(sq *s, sqlite3_stmt *st, lk_error *err, const char *what)
+{
+    lk_code rc = LK_OK;
+    if (sqlite3_step(st) != SQLITE_DONE)
+        rc = (sqlite3_extended_errcode(s->db) & 0xff) == SQLITE_CONSTRAINT
+                 ? lk_error_set(err, LK_ERR_INVALID_ARGUMENT, "store %s: %s: %s", s->path, what,
+                                sqlite3_errmsg(s->db))
+                 : db_error(s, err, what);
+    sqlite3_finalize(st);
+    return rc;
+}
+
+static lk_code tkadd_fn(sq *s, void *arg, lk_error *err)
+{
+    const tkadd *a = arg;
+    sqlite3_stmt *st;
+    lk_code rc;
+    if (a->make_current) {
+        rc = prepare(s, "UPDATE template_keys SET is_current = 0 WHERE is_current = 1", &st, err);
+        if (rc != LK_OK || (rc = step_done(s, st, err, "cannot clear the current data key")))
+            return rc;
+    }
+    rc = prepare(s,
+                 "INSERT INTO template_keys(key_id, kek_id, wrapped, created_ms, is_current)"
+                 " VALUES(?1, ?2, ?3, ?4, ?5)",
+                 &st, err);
+    if (rc != LK_OK)
+        return rc;
+    sqlite3_bind_text(st, 1, a->key_id, -1, SQLITE_STATIC);
+    sqlite3_bind_text(st, 2, a->kek_id, -1, SQLITE_STATIC);
+    sqlite3_bind_blob64(st, 3, a->wrapped, a->len, SQLITE_STATIC);
+    sqlite3_bind_int64(st, 4, lk_store_now_ms());
+    sqlite3_bind_int(st, 5, a->make_current ? 1 : 0);
+    rc = step_done(s, st, err, "cannot insert a data key");
+    if (rc == LK_ERR_INVALID_ARGUMENT)
+        rc = lk_error_set(err, LK_ERR_INVALID_ARGUMENT, "data key %s already exists", a->key_id);
+    return rc;
+}
+
+static lk_code sq_template_keys_add(void *h, const char *key_id, const char *kek_id,
+                                    const uint8_t *wrapped, size_t len, bool make_current,
+                                    lk_error *err)
+{
+    tkadd a = {key_id, kek_id, wrapped, len, make_current};
+    return write_txn(h, tkadd_fn, &a, err);
+}
+
+static lk_code sq_template_keys_list(void *h, bool (*fn)(const lk_wrapped_key *k, void *ctx),
+                                     void *ctx, lk_error *err)
+{
+    sq *s = h;
+    sqlite3_stmt *st;
+    lk_code rc = prepare(s,
+                         "SELECT key_id, kek_id, wrapped, created_ms, is_current"
+                         " FROM template_keys ORDER BY created_ms, key_id",
+                         &st, err);
+    if (rc != LK_OK)
+        return rc;
+    int r;
+    while ((r = sqlite3_step(st)) == SQLITE_ROW) {
+        lk_wrapped_key k;
+        memset(&k, 0, sizeof k);
+        col_text(st, 0, k.key_id, sizeof k.key_id);
+        col_text(st, 1, k.kek_id, sizeof k.kek_id);
+        k.wrapped = sqlite3_column_blob(st, 2);
+        k.len = (size_t)sqlite3_column_bytes(st, 2);
+        k.created_ms = sqlite3_column_int64(st, 3);
+        k.is_current = sqlite3_column_int(st, 4) != 0;
+        if (!fn(&k, ctx)) {
+            r = SQLITE_DONE;
+            break;
+        }
+    }
+    if (r != SQLITE_DONE)
+        rc = db_error(s, err, "cannot list the data keys");
+    sqlite3_finalize(st);
+    return rc;
+}
+
+static lk_code sq_template_keys_rewrap(void *h, const char *key_id, const char *old_kek_id,
+                                       const char *new_kek_id, const uint8_t *wrapped,
+                                       size_t len, bool *replaced, lk_error *err)
+{
+    sq *s = h;
+    sqlite3_stmt *st;
+    /* The KEK condition makes this a compare-and-swap. */
+    lk_code rc = prepare(s,
+                         "UPDATE template_keys SET kek_id = ?1, wrapped = ?2"
+                         " WHERE key_id = ?3 AND kek_id = ?4",
+                         &st, err);
+    if (rc != LK_OK)
+        return rc;
+    sqlite3_bind_text(st, 1, new_kek_id, -1, SQLITE_STATIC);
+    sqlite3_bind_blob64(st, 2, wrapped, len, SQLITE_STATIC);
+    sqlite3_bind_text(st, 3, key_id, -1, SQLITE_STATIC);
+    sqlite3_bind_text(st, 4, old_kek_id, -1, SQLITE_STATIC);
+    if (sqlite3_step(st) != SQLITE_DONE)
+        rc = db_error(s, err, "cannot re-wrap a data key");
     else
         *replaced = sqlite3_changes(s->db) == 1;
     sqlite3_finalize(st);
@@ -946,6 +1073,9 @@ const lk_store_backend lk_store_sqlite_backend = {
     .template_count = sq_template_count,
     .template_ids_not_under_key = sq_template_ids_not_under_key,
     .template_rekey = sq_template_rekey,
+    .template_keys_add = sq_template_keys_add,
+    .template_keys_list = sq_template_keys_list,
+    .template_keys_rewrap = sq_template_keys_rewrap,
     .apikey_put = sq_apikey_put,
     .apikey_get = sq_apikey_get,
     .apikey_revoke = sq_apikey_revoke,

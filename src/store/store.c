@@ -232,6 +232,121 @@ lk_code lk_store_template_rekey(lk_store *s, const char *template_id, const char
     return rc;
 }
 
+/* ---- template data keys ---- */
+
+static bool key_id_ok(const char *id)
+{
+    size_t n = id ? strnlen(id, LK_KEY_ID_MAX) : 0;
+    if (n == 0 || n >= LK_KEY_ID_MAX)
+        return false;
+    for (size_t i = 0; i < n; i++)
+        if (!((id[i] >= 'a' && id[i] <= 'z') || (id[i] >= '0' && id[i] <= '9') || id[i] == '_' ||
+              id[i] == '-'))
+            return false;
+    return true;
+}
+
+lk_code lk_store_template_keys_add(lk_store *s, const char *key_id, const char *kek_id,
+                                   const uint8_t *wrapped, size_t len, bool make_current,
+                                   lk_error *err)
+{
+    if (!s)
+        return no_store(err);
+    if (!key_id_ok(key_id) || !key_id_ok(kek_id) || !wrapped || len == 0 || len > 4096)
+        return lk_error_set(err, LK_ERR_INVALID_ARGUMENT,
+                            "template_keys_add: a data key needs well-formed key and KEK ids "
+                            "and its wrapped bytes");
+    lk_code rc;
+    LOCKED(s, rc = s->be->template_keys_add(s->h, key_id, kek_id, wrapped, len, make_current,
+                                            err));
+    return rc;
+}
+
+lk_code lk_store_template_keys_list(lk_store *s, bool (*fn)(const lk_wrapped_key *k, void *ctx),
+                                    void *ctx, lk_error *err)
+{
+    if (!s)
+        return no_store(err);
+    if (!fn)
+        return lk_error_set(err, LK_ERR_INVALID_ARGUMENT, "template_keys_list: no callback");
+    lk_code rc;
+    LOCKED(s, rc = s->be->template_keys_list(s->h, fn, ctx, err));
+    return rc;
+}
+
+lk_code lk_store_template_keys_rewrap(lk_store *s, const char *key_id, const char *old_kek_id,
+                                      const char *new_kek_id, const uint8_t *wrapped,
+                                      size_t len, bool *replaced, lk_error *err)
+{
+    if (!s)
+        return no_store(err);
+    bool dummy;
+    if (!replaced)
+        replaced = &dummy;
+    *replaced = false;
+    if (!key_id || !old_kek_id || !key_id_ok(new_kek_id) || !wrapped || len == 0 || len > 4096)
+        return lk_error_set(err, LK_ERR_INVALID_ARGUMENT,
+                            "template_keys_rewrap: missing argument");
+    lk_code rc;
+    LOCKED(s, rc = s->be->template_keys_rewrap(s->h, key_id, old_kek_id, new_kek_id, wrapped,
+                                               len, replaced, err));
+    return rc;
+}
+
+/* The listed keys, copied out of the backend's rows. */
+typedef struct key_list {
+    lk_wrapped_key *k;
+    uint8_t *blobs; /* LK_WRAPPED_KEY_BYTES per key; other lengths are kept as 0 bytes */
+    size_t n, cap;
+    bool nomem;
+} key_list;
+
+static bool collect_key(const lk_wrapped_key *k, void *ctx)
+{
+    key_list *l = ctx;
+    if (l->n == l->cap) {
+        size_t cap = l->cap ? 2 * l->cap : 8;
+        lk_wrapped_key *nk = realloc(l->k, cap * sizeof *nk);
+        if (nk)
+            l->k = nk;
+        uint8_t *nb = nk ? realloc(l->blobs, cap * LK_WRAPPED_KEY_BYTES) : NULL;
+        if (!nk || !nb) {
+            l->nomem = true;
+            return false;
+        }
+        l->blobs = nb;
+        l->cap = cap;
+    }
+    lk_wrapped_key *d = &l->k[l->n++];
+    *d = *k;
+    /* A blob of another length is handed on with its length and no bytes
+     * worth reading: lk_keyring_install refuses it by its length. */
+    if (k->len == LK_WRAPPED_KEY_BYTES)
+        memcpy(l->blobs + (l->n - 1) * LK_WRAPPED_KEY_BYTES, k->wrapped, LK_WRAPPED_KEY_BYTES);
+    return true;
+}
+
+lk_code lk_store_sync_keys(lk_store *s, lk_keyring *kr, lk_error *err)
+{
+    if (!s)
+        return no_store(err);
+    if (!kr)
+        return lk_error_set(err, LK_ERR_INVALID_ARGUMENT, "sync_keys: no key ring");
+    key_list l = {0};
+    lk_code rc = lk_store_template_keys_list(s, collect_key, &l, err);
+    if (rc == LK_OK && l.nomem)
+        rc = lk_error_set(err, LK_ERR_NOMEM, "out of memory reading the store's data keys");
+    if (rc == LK_OK) {
+        /* The pointers are set only now: the blob array may have moved. */
+        for (size_t i = 0; i < l.n; i++)
+            l.k[i].wrapped = l.blobs + i * LK_WRAPPED_KEY_BYTES;
+        rc = lk_keyring_install(kr, l.k, l.n, err);
+    }
+    free(l.k);
+    free(l.blobs);
+    return rc;
+}
+
 /* ---- API keys ---- */
 
 static const struct {

@@ -99,7 +99,7 @@ with tempfile.TemporaryDirectory() as tmp:
     con = sqlite3.connect(db)
     check(con.execute("PRAGMA journal_mode").fetchone()[0] == "wal", "journal_mode is wal")
     check(con.execute("PRAGMA integrity_check").fetchone()[0] == "ok", "integrity_check ok")
-    check(con.execute("PRAGMA user_version").fetchone()[0] == 1, "schema version 1")
+    check(con.execute("PRAGMA user_version").fetchone()[0] == 2, "schema version 2 (docs/store-schema.md)")
 
     rows = con.execute("SELECT seq, time_ms, operation, caller, request_id, template_id,"
                        " decision, score, threshold, model_id, reasons, status, prev_hash, hash"

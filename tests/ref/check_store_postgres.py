@@ -190,11 +190,14 @@ try:
             ("audit_records", "hash"): "bytea", ("audit_records", "prev_hash"): "bytea",
             ("audit_checkpoints", "signature"): "bytea", ("templates", "record"): "bytea",
             ("templates", "expires_ms"): "bigint", ("api_keys", "hash"): "bytea",
-            ("likeness_schema", "version"): "integer"}
+            ("likeness_schema", "version"): "integer",
+            ("template_keys", "key_id"): "text", ("template_keys", "kek_id"): "text",
+            ("template_keys", "wrapped"): "bytea", ("template_keys", "created_ms"): "bigint",
+            ("template_keys", "is_current"): "boolean"}
     bad = {k: (types.get(k), v) for k, v in want.items() if types.get(k) != v}
     check(not bad, f"column types as documented {bad or ''}")
     check(psql(furl, "SELECT application, version FROM likeness_schema") ==
-          [["likeness", "1"]], "likeness_schema: application likeness, version 1")
+          [["likeness", "2"]], "likeness_schema: application likeness, version 2")
 
     hx = "encode(convert_to({}, 'UTF8'), 'hex')"
     f8 = "coalesce(encode(float8send({}), 'hex'), '')"

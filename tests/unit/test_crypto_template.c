@@ -2,7 +2,10 @@
  * flipped byte and every truncation refused with the code the format
  * document gives for that field; bindings (template id, model id, feature
  * configuration); unknown keys; re-sealing after a rotation; concurrent
- * opens while the key file rotates. The independent reader of the format
+ * opens while the key file rotates; data keys wrapped under a file key
+ * (docs/key-file.md, "Data keys in the store"): unwrapped here with a direct
+ * libsodium call and the associated data built from the document, wrong
+ * KEK, altered wrappings, switching of the current key, refresh keeping them. The independent reader of the format
  * (PyNaCl, hashlib) is tests/ref/check_crypto_template.py. */
 #include <pthread.h>
 #include <stdio.h>
@@ -10,6 +13,8 @@
 #include <string.h>
 #include <sys/stat.h>
 #include <unistd.h>
+
+#include <sodium.h>
 
 #include "likeness/crypto.h"
 #include "lk_test.h"
@@ -310,6 +315,223 @@ static void test_reseal(void)
     lk_keyring_free(kr);
 }
 
+/* The 32 bytes of template key id from the key file's text (docs/key-file.md:
+ * "template-key ID HEX [current]"); false if absent. */
+static bool file_key(const char *path, const char *id, uint8_t key[32])
+{
+    FILE *f = fopen(path, "r");
+    char line[512], want[64];
+    bool ok = false;
+    snprintf(want, sizeof want, "template-key %s ", id);
+    while (f && !ok && fgets(line, sizeof line, f))
+        if (!strncmp(line, want, strlen(want)))
+            ok = sodium_hex2bin(key, 32, line + strlen(want), 64, NULL, NULL, NULL) == 0;
+    if (f)
+        fclose(f);
+    return ok;
+}
+
+/* Unwraps as docs/key-file.md says: nonce = wrapped[0..24), AD =
+ * "likeness-key-wrap-v1" || u8 len || key_id || u8 len || kek_id. */
+static bool doc_unwrap(const char *key_id, const char *kek_id, const uint8_t kek[32],
+                       const uint8_t *w, size_t wlen, uint8_t key[32])
+{
+    uint8_t ad[128];
+    size_t o = 0, a = strlen(key_id), b = strlen(kek_id);
+    memcpy(ad, "likeness-key-wrap-v1", 20);
+    o = 20;
+    ad[o++] = (uint8_t)a;
+    memcpy(ad + o, key_id, a);
+    o += a;
+    ad[o++] = (uint8_t)b;
+    memcpy(ad + o, kek_id, b);
+    o += b;
+    unsigned long long n = 0;
+    return wlen == 72 &&
+           crypto_aead_xchacha20poly1305_ietf_decrypt(key, &n, NULL, w + 24, wlen - 24, ad, o, w,
+                                                      kek) == 0 &&
+           n == 32;
+}
+
+/* Opens a record with a raw key as docs/template-format.md says (AD: the
+ * header [0, 131+n); nonce at 107+n). */
+static bool doc_open(const uint8_t *rec, size_t len, const uint8_t key[32], double *out, size_t dim)
+{
+    size_t n = rec[6], h = 131 + n;
+    unsigned long long pl = 0;
+    uint8_t pt[8 * DIM];
+    if (len != h + 8 * dim + 16 || dim > DIM ||
+        crypto_aead_xchacha20poly1305_ietf_decrypt(pt, &pl, NULL, rec + h, len - h, rec, h,
+                                                   rec + 107 + n, key) != 0)
+        return false;
+    memcpy(out, pt, 8 * dim); /* little-endian host assumed, as the x86-64/arm64 builds are */
+    return pl == 8 * dim;
+}
+
+static void test_data_keys(void)
+{
+    lk_error err;
+    const char *p = path_in("dk.keys");
+    lk_keyring *kr = new_ring("dk.keys");
+    char f0[LK_KEY_ID_MAX], k1[LK_KEY_ID_MAX], k2[LK_KEY_ID_MAX], kek[LK_KEY_ID_MAX],
+        kek2[LK_KEY_ID_MAX], cur[LK_KEY_ID_MAX], rid[LK_KEY_ID_MAX];
+    lk_keyring_current_id(kr, f0);
+    uint8_t *w1 = NULL, *w2 = NULL;
+    size_t l1 = 0, l2 = 0;
+    CHECK(lk_keyring_wrap_new_key(kr, k1, kek, &w1, &l1, &err) == LK_OK, "wrap: %s",
+          err.message);
+    CHECK(strlen(k1) == 17 && k1[0] == 'd' && strspn(k1 + 1, "0123456789abcdef") == 16 &&
+              !strcmp(kek, f0) && l1 == LK_WRAPPED_KEY_BYTES,
+          "data key id %s under %s, %zu bytes", k1, kek, l1);
+    CHECK(lk_keyring_wrap_new_key(kr, k2, kek2, &w2, &l2, &err) == LK_OK && strcmp(k1, k2) &&
+              !strcmp(kek2, f0), "second data key");
+    CHECK(!lk_keyring_has_key(kr, k1), "not installed before lk_keyring_install");
+
+    uint8_t fk[32], d1[32], d2[32];
+    CHECK(file_key(p, f0, fk), "file key %s read from the file", f0);
+    CHECK(doc_unwrap(k1, f0, fk, w1, l1, d1) && doc_unwrap(k2, f0, fk, w2, l2, d2) &&
+              memcmp(d1, d2, 32) && memcmp(d1, fk, 32),
+          "wrapped keys open as docs/key-file.md describes, two different keys");
+    uint8_t scratch[32];
+    CHECK(!doc_unwrap(k2, f0, fk, w1, l1, scratch),
+          "a wrapping does not open under another key id");
+
+    lk_wrapped_key ks[2] = {{.wrapped = w1, .len = l1, .is_current = true},
+                            {.wrapped = w2, .len = l2}};
+    memcpy(ks[0].key_id, k1, LK_KEY_ID_MAX);
+    memcpy(ks[0].kek_id, kek, LK_KEY_ID_MAX);
+    memcpy(ks[1].key_id, k2, LK_KEY_ID_MAX);
+    memcpy(ks[1].kek_id, kek2, LK_KEY_ID_MAX);
+    CHECK(lk_keyring_install(kr, ks, 2, &err) == LK_OK, "install: %s", err.message);
+    lk_keyring_current_id(kr, cur);
+    CHECK(!strcmp(cur, k1) && lk_keyring_has_key(kr, k1) && lk_keyring_has_key(kr, k2) &&
+              lk_keyring_has_key(kr, f0), "current %s, want the store's current %s", cur, k1);
+    lk_keyring_file_current_id(kr, cur);
+    CHECK(!strcmp(cur, f0), "file's current key unchanged");
+
+    lk_template_binding b = {.model_id = MODEL, .feature_config = CONFIG};
+    lk_template_new_id(b.template_id);
+    double v[DIM], out[DIM];
+    fill(v, DIM, 11);
+    uint8_t *rec = NULL, *rec2 = NULL;
+    size_t len = 0, len2 = 0, dim = 0;
+    CHECK(lk_template_seal(kr, &b, v, DIM, &rec, &len, rid, &err) == LK_OK && !strcmp(rid, k1),
+          "sealed under the data key %s: %s", rid, err.message);
+    CHECK(rec && doc_open(rec, len, d1, out, DIM) && !memcmp(out, v, sizeof v),
+          "record opens with the unwrapped data key (libsodium, docs/template-format.md)");
+
+    /* Another key file: the KEK is absent; a wrapping relabelled with its
+     * key id fails authentication. Both name the data key. */
+    lk_keyring *other = new_ring("dk-other.keys");
+    CHECK(lk_keyring_install(other, ks, 2, &err) == LK_ERR_KEY && strstr(err.message, k1) &&
+              strstr(err.message, f0), "absent KEK refused: %s", err.message);
+    lk_wrapped_key forged = ks[0];
+    lk_keyring_current_id(other, forged.kek_id);
+    CHECK(lk_keyring_install(other, &forged, 1, &err) == LK_ERR_KEY && strstr(err.message, k1) &&
+              strstr(err.message, "authentication"), "wrong KEK refused: %s", err.message);
+    CHECK(!lk_keyring_has_key(other, k1), "nothing installed after a refusal");
+    CHECK(lk_template_open(other, &b, rec, len, out, DIM, &dim, &err) == LK_ERR_KEY,
+          "record under a data key the ring lacks: LK_ERR_KEY");
+    lk_keyring_free(other);
+
+    /* Every altered byte of a wrapping is refused, all or nothing: the keys
+     * installed before stay. */
+    int refused = 0;
+    uint8_t t[LK_WRAPPED_KEY_BYTES];
+    for (size_t i = 0; i < l2; i++) {
+        memcpy(t, w2, l2);
+        t[i] ^= 0x01;
+        lk_wrapped_key bad[2] = {ks[0], ks[1]};
+        bad[1].wrapped = t;
+        refused += lk_keyring_install(kr, bad, 2, &err) == LK_ERR_KEY &&
+                   strstr(err.message, k2) != NULL;
+    }
+    CHECK(refused == (int)l2, "%d of %zu altered wrappings refused", refused, l2);
+    lk_wrapped_key swapped[2] = {ks[0], ks[1]};
+    memcpy(swapped[0].key_id, k2, LK_KEY_ID_MAX);
+    memcpy(swapped[1].key_id, k1, LK_KEY_ID_MAX);
+    CHECK(lk_keyring_install(kr, swapped, 2, &err) == LK_ERR_KEY, "swapped key ids refused");
+    lk_wrapped_key dup[2] = {ks[0], ks[0]};
+    dup[1].is_current = false;
+    CHECK(lk_keyring_install(kr, dup, 2, &err) == LK_ERR_KEY && strstr(err.message, "twice"),
+          "repeated key id refused: %s", err.message);
+    lk_wrapped_key two[2] = {ks[0], ks[1]};
+    two[1].is_current = true;
+    CHECK(lk_keyring_install(kr, two, 2, &err) == LK_ERR_KEY, "two current keys refused");
+    lk_wrapped_key shortw = ks[1];
+    shortw.len = 40;
+    CHECK(lk_keyring_install(kr, &shortw, 1, &err) == LK_ERR_KEY, "short wrapping refused");
+    lk_wrapped_key clash = ks[1];
+    memcpy(clash.key_id, f0, LK_KEY_ID_MAX);
+    CHECK(lk_keyring_install(kr, &clash, 1, &err) == LK_ERR_KEY, "a file key's id refused");
+    lk_keyring_current_id(kr, cur);
+    CHECK(!strcmp(cur, k1) && lk_keyring_has_key(kr, k2) &&
+              lk_template_open(kr, &b, rec, len, out, DIM, &dim, &err) == LK_OK,
+          "after the refusals the installed keys stay (current %s)", cur);
+
+    /* Current switching: the store's mark decides; none marked: the file's. */
+    ks[0].is_current = false;
+    ks[1].is_current = true;
+    CHECK(lk_keyring_install(kr, ks, 2, &err) == LK_OK, "install: %s", err.message);
+    lk_keyring_current_id(kr, cur);
+    CHECK(!strcmp(cur, k2), "current switched to %s", cur);
+    CHECK(lk_template_seal(kr, &b, v, DIM, &rec2, &len2, rid, &err) == LK_OK &&
+              !strcmp(rid, k2) && doc_open(rec2, len2, d2, out, DIM) && !memcmp(out, v, sizeof v),
+          "sealed under the new current key %s", rid);
+    CHECK(lk_template_open(kr, &b, rec, len, out, DIM, &dim, &err) == LK_OK &&
+              !memcmp(out, v, sizeof v), "record under the previous data key still opens");
+    ks[1].is_current = false;
+    CHECK(lk_keyring_install(kr, ks, 2, &err) == LK_OK, "install, none current");
+    lk_keyring_current_id(kr, cur);
+    CHECK(!strcmp(cur, f0), "no current data key: the file's current key %s", cur);
+    ks[1].is_current = true;
+    CHECK(lk_keyring_install(kr, ks, 2, &err) == LK_OK, "install again");
+
+    /* A new file key: refresh keeps the data keys; re-wrapping moves them
+     * under it. */
+    char f1[LK_KEY_ID_MAX];
+    bool changed = false;
+    CHECK(lk_keyring_rotate_file(p, f1, &err) == LK_OK &&
+              lk_keyring_refresh(kr, &changed, &err) == LK_OK && changed,
+          "file rotated and re-read: %s", err.message);
+    lk_keyring_current_id(kr, cur);
+    CHECK(!strcmp(cur, k2) && lk_keyring_has_key(kr, k1) &&
+              lk_template_open(kr, &b, rec, len, out, DIM, &dim, &err) == LK_OK,
+          "refresh keeps the installed data keys (current %s)", cur);
+    uint8_t *rw = NULL;
+    size_t rwl = 0;
+    char rkek[LK_KEY_ID_MAX];
+    uint8_t fk1[32], d1b[32];
+    CHECK(lk_keyring_rewrap_key(kr, k1, rkek, &rw, &rwl, &err) == LK_OK && !strcmp(rkek, f1),
+          "re-wrapped under %s: %s", rkek, err.message);
+    CHECK(rw && file_key(p, f1, fk1) && doc_unwrap(k1, f1, fk1, rw, rwl, d1b) &&
+              !memcmp(d1b, d1, 32), "the re-wrapped key is the same key under the new KEK");
+    uint8_t *none = NULL;
+    size_t nl = 0;
+    CHECK(lk_keyring_rewrap_key(kr, f0, rkek, &none, &nl, &err) == LK_ERR_KEY && !none,
+          "a file key is not a data key to re-wrap");
+    free(w1);
+    w1 = rw;
+    l1 = rwl;
+    ks[0].wrapped = w1;
+    memcpy(ks[0].kek_id, f1, LK_KEY_ID_MAX);
+    CHECK(lk_keyring_install(kr, ks, 2, &err) == LK_OK && lk_keyring_has_key(kr, k1),
+          "install of the re-wrapped key: %s", err.message);
+    CHECK(lk_keyring_install(kr, NULL, 0, &err) == LK_OK && !lk_keyring_has_key(kr, k1),
+          "an empty list removes the data keys");
+    lk_keyring_current_id(kr, cur);
+    CHECK(!strcmp(cur, f1), "and the file's current key seals again (%s)", cur);
+    sodium_memzero(d1, 32);
+    sodium_memzero(d2, 32);
+    free(w1);
+    free(w2);
+    free(rec);
+    free(rec2);
+    lk_keyring_free(kr);
+    unlink(p);
+    unlink(path_in("dk-other.keys"));
+}
+
 /* Readers open records while the key file is rotated and refreshed. */
 typedef struct reader {
     lk_keyring *kr;
@@ -386,6 +608,7 @@ int main(void)
     test_noise(kr);
     lk_keyring_free(kr);
     test_reseal();
+    test_data_keys();
     test_threads();
     const char *names[] = {"main.keys", "other.keys", "other2.keys", "rot.keys", "thr.keys"};
     for (size_t i = 0; i < 5; i++)

@@ -413,6 +413,209 @@ static void test_versions(void)
     }
 }
 
+/* ---- template data keys ---- */
+
+typedef struct klist {
+    lk_wrapped_key k[8];
+    uint8_t w[8][LK_WRAPPED_KEY_BYTES];
+    size_t n;
+} klist;
+
+static bool collect_wrapped(const lk_wrapped_key *k, void *ctx)
+{
+    klist *l = ctx;
+    if (l->n == 8)
+        return false;
+    l->k[l->n] = *k;
+    memcpy(l->w[l->n], k->wrapped, k->len < LK_WRAPPED_KEY_BYTES ? k->len : LK_WRAPPED_KEY_BYTES);
+    l->k[l->n].wrapped = l->w[l->n];
+    l->n++;
+    return true;
+}
+
+static const lk_wrapped_key *find_key(const klist *l, const char *id)
+{
+    for (size_t i = 0; i < l->n; i++)
+        if (!strcmp(l->k[i].key_id, id))
+            return &l->k[i];
+    return NULL;
+}
+
+static size_t n_current(const klist *l)
+{
+    size_t n = 0;
+    for (size_t i = 0; i < l->n; i++)
+        n += l->k[i].is_current;
+    return n;
+}
+
+static void test_template_keys(const char *url, lk_keyring *kr)
+{
+    lk_error err;
+    lk_store *s = lk_store_open(url, &err);
+    CHECK(s != NULL, "open: %s", err.message);
+    if (!s)
+        return;
+    klist l = {0};
+    CHECK(lk_store_template_keys_list(s, collect_wrapped, &l, &err) == LK_OK && l.n == 0,
+          "no data keys in a new store");
+    char id[3][LK_KEY_ID_MAX], kek[3][LK_KEY_ID_MAX];
+    uint8_t *w[3] = {NULL, NULL, NULL};
+    size_t wl[3] = {0, 0, 0};
+    for (int i = 0; i < 3; i++)
+        CHECK(lk_keyring_wrap_new_key(kr, id[i], kek[i], &w[i], &wl[i], &err) == LK_OK,
+              "wrap: %s", err.message);
+    CHECK(lk_store_template_keys_add(s, id[0], kek[0], w[0], wl[0], true, &err) == LK_OK,
+          "add current: %s", err.message);
+    CHECK(lk_store_template_keys_add(s, id[1], kek[1], w[1], wl[1], false, &err) == LK_OK,
+          "add: %s", err.message);
+    l.n = 0;
+    CHECK(lk_store_template_keys_list(s, collect_wrapped, &l, &err) == LK_OK && l.n == 2 &&
+              n_current(&l) == 1 && find_key(&l, id[0]) && find_key(&l, id[0])->is_current,
+          "two keys, the first current");
+    CHECK(lk_store_template_keys_add(s, id[2], kek[2], w[2], wl[2], true, &err) == LK_OK,
+          "add a new current: %s", err.message);
+    l.n = 0;
+    CHECK(lk_store_template_keys_list(s, collect_wrapped, &l, &err) == LK_OK && l.n == 3 &&
+              n_current(&l) == 1 && find_key(&l, id[2])->is_current,
+          "three keys, only the newest current");
+    bool same = true;
+    for (int i = 0; i < 3; i++) {
+        const lk_wrapped_key *k = find_key(&l, id[i]);
+        same = same && k && k->len == wl[i] && !memcmp(k->wrapped, w[i], wl[i]) &&
+               !strcmp(k->kek_id, kek[i]) && k->created_ms > 1600000000000;
+    }
+    CHECK(same, "ids, KEK ids, wrapped bytes and creation times read back as written");
+    CHECK(lk_store_template_keys_add(s, id[1], kek[1], w[1], wl[1], true, &err) ==
+              LK_ERR_INVALID_ARGUMENT,
+          "a key id added twice refused: %s", lk_code_name(err.code));
+    l.n = 0;
+    CHECK(lk_store_template_keys_list(s, collect_wrapped, &l, &err) == LK_OK && l.n == 3 &&
+              find_key(&l, id[2])->is_current,
+          "a refused add changes nothing (the current mark stays)");
+    CHECK(!exec_sql(url, pg_base ? "UPDATE template_keys SET is_current = TRUE"
+                                 : "UPDATE template_keys SET is_current = 1"),
+          "the schema refuses a second current key");
+
+    /* Sync: the ring seals under the store's current key. */
+    CHECK(lk_store_sync_keys(s, kr, &err) == LK_OK, "sync: %s", err.message);
+    char cur[LK_KEY_ID_MAX];
+    lk_keyring_current_id(kr, cur);
+    CHECK(!strcmp(cur, id[2]) && lk_keyring_has_key(kr, id[0]) && lk_keyring_has_key(kr, id[1]),
+          "after sync the current key is %s (want %s)", cur, id[2]);
+
+    /* Re-wrap is a compare-and-swap on the KEK id. */
+    bool replaced = true;
+    CHECK(lk_store_template_keys_rewrap(s, id[0], "tnot-the-kek", kek[0], w[1], wl[1], &replaced,
+                                        &err) == LK_OK && !replaced,
+          "re-wrap under a stale KEK id replaces nothing");
+    uint8_t *rw = NULL;
+    size_t rwl = 0;
+    char rkek[LK_KEY_ID_MAX];
+    CHECK(lk_keyring_rewrap_key(kr, id[0], rkek, &rw, &rwl, &err) == LK_OK &&
+              lk_store_template_keys_rewrap(s, id[0], kek[0], rkek, rw, rwl, &replaced, &err) ==
+                  LK_OK && replaced,
+          "re-wrap: %s", err.message);
+    CHECK(lk_store_sync_keys(s, kr, &err) == LK_OK, "sync after re-wrap: %s", err.message);
+
+    /* An altered wrapping in the store: sync refused naming the key, the
+     * ring keeps what it had. */
+    char sql[256];
+    snprintf(sql, sizeof sql,
+             pg_base ? "UPDATE template_keys SET wrapped = set_byte(wrapped, 40, get_byte(wrapped, "
+                       "40) # 1) WHERE key_id = '%s'"
+                     : "UPDATE template_keys SET wrapped = substr(wrapped, 1, 40) || CASE WHEN "
+                       "substr(wrapped, 41, 1) = x'00' THEN x'01' ELSE x'00' END || "
+                       "substr(wrapped, 42) WHERE key_id = '%s'",
+             id[1]);
+    CHECK(exec_sql(url, sql), "alter a wrapped key");
+    CHECK(lk_store_sync_keys(s, kr, &err) == LK_ERR_KEY && strstr(err.message, id[1]),
+          "altered wrapped key refused: %s", err.message);
+    lk_keyring_current_id(kr, cur);
+    CHECK(!strcmp(cur, id[2]) && lk_keyring_has_key(kr, id[1]), "the ring keeps its keys");
+    CHECK(lk_keyring_install(kr, NULL, 0, &err) == LK_OK, "uninstall");
+    for (int i = 0; i < 3; i++)
+        free(w[i]);
+    free(rw);
+    lk_store_close(s);
+}
+
+/* A store made by schema version 1 (the tables as version 1 created them,
+ * written out here) is migrated to the current version on open, keeping its
+ * rows. */
+static void test_migration_v1(void)
+{
+    static const char *const v1_sqlite =
+        "CREATE TABLE templates(template_id TEXT PRIMARY KEY NOT NULL, subject_ref TEXT NOT "
+        "NULL DEFAULT '', key_id TEXT NOT NULL, model_id TEXT NOT NULL, created_ms INTEGER NOT "
+        "NULL, expires_ms INTEGER NOT NULL DEFAULT 0, image_count INTEGER NOT NULL, record BLOB "
+        "NOT NULL);"
+        "CREATE INDEX templates_expiry ON templates(expires_ms) WHERE expires_ms > 0;"
+        "CREATE TABLE api_keys(id TEXT PRIMARY KEY NOT NULL, name TEXT NOT NULL, scopes TEXT NOT "
+        "NULL, hash BLOB NOT NULL CHECK (length(hash) = 32), created_ms INTEGER NOT NULL, "
+        "revoked_ms INTEGER NOT NULL DEFAULT 0);"
+        "CREATE TABLE audit_records(seq INTEGER PRIMARY KEY CHECK (seq > 0), time_ms INTEGER NOT "
+        "NULL, operation INTEGER NOT NULL, caller TEXT NOT NULL, request_id TEXT NOT NULL, "
+        "template_id TEXT NOT NULL, decision TEXT NOT NULL, score REAL, threshold REAL, model_id "
+        "TEXT NOT NULL, reasons TEXT NOT NULL, status INTEGER NOT NULL, prev_hash BLOB NOT NULL "
+        "CHECK (length(prev_hash) = 32), hash BLOB NOT NULL CHECK (length(hash) = 32));"
+        "CREATE TABLE audit_checkpoints(seq INTEGER PRIMARY KEY REFERENCES audit_records(seq), "
+        "hash BLOB NOT NULL CHECK (length(hash) = 32), public_key BLOB NOT NULL CHECK "
+        "(length(public_key) = 32), signature BLOB NOT NULL CHECK (length(signature) = 64), "
+        "time_ms INTEGER NOT NULL);"
+        "PRAGMA application_id = 1280003667;"
+        "PRAGMA user_version = 1;"
+        "INSERT INTO templates VALUES('0123456789abcdef0123456789abcdef', 's', 'tk', "
+        "'0123456789abcdef0123456789abcdef', 1, 0, 1, x'00');";
+    static const char *const v1_pg =
+        "CREATE TABLE likeness_schema(singleton BOOLEAN PRIMARY KEY DEFAULT TRUE CHECK "
+        "(singleton), application TEXT NOT NULL, version INTEGER NOT NULL);"
+        "INSERT INTO likeness_schema(application, version) VALUES ('likeness', 1);"
+        "CREATE TABLE templates(template_id TEXT COLLATE \"C\" PRIMARY KEY NOT NULL, subject_ref "
+        "TEXT NOT NULL DEFAULT '', key_id TEXT COLLATE \"C\" NOT NULL, model_id TEXT NOT NULL, "
+        "created_ms BIGINT NOT NULL, expires_ms BIGINT NOT NULL DEFAULT 0, image_count INTEGER "
+        "NOT NULL, record BYTEA NOT NULL);"
+        "CREATE INDEX templates_expiry ON templates(expires_ms) WHERE expires_ms > 0;"
+        "CREATE TABLE api_keys(id TEXT COLLATE \"C\" PRIMARY KEY NOT NULL, name TEXT NOT NULL, "
+        "scopes TEXT NOT NULL, hash BYTEA NOT NULL CHECK (octet_length(hash) = 32), created_ms "
+        "BIGINT NOT NULL, revoked_ms BIGINT NOT NULL DEFAULT 0, ord BIGINT GENERATED ALWAYS AS "
+        "IDENTITY);"
+        "CREATE TABLE audit_records(seq BIGINT PRIMARY KEY CHECK (seq > 0), time_ms BIGINT NOT "
+        "NULL, operation INTEGER NOT NULL, caller TEXT NOT NULL, request_id TEXT NOT NULL, "
+        "template_id TEXT NOT NULL, decision TEXT NOT NULL, score DOUBLE PRECISION NULL, "
+        "threshold DOUBLE PRECISION NULL, model_id TEXT NOT NULL, reasons TEXT NOT NULL, status "
+        "INTEGER NOT NULL, prev_hash BYTEA NOT NULL CHECK (octet_length(prev_hash) = 32), hash "
+        "BYTEA NOT NULL CHECK (octet_length(hash) = 32));"
+        "CREATE TABLE audit_checkpoints(seq BIGINT PRIMARY KEY REFERENCES audit_records(seq), "
+        "hash BYTEA NOT NULL CHECK (octet_length(hash) = 32), public_key BYTEA NOT NULL CHECK "
+        "(octet_length(public_key) = 32), signature BYTEA NOT NULL CHECK "
+        "(octet_length(signature) = 64), time_ms BIGINT NOT NULL);"
+        "INSERT INTO templates VALUES('0123456789abcdef0123456789abcdef', 's', 'tk', "
+        "'0123456789abcdef0123456789abcdef', 1, 0, 1, '\\x00');";
+    lk_error err;
+    char u[700];
+    CHECK(fresh("v1"), "fresh store");
+    store_url(u, sizeof u, "v1");
+    CHECK(exec_sql(u, pg_base ? v1_pg : v1_sqlite), "version 1 store written");
+    lk_store *s = lk_store_open(u, &err);
+    CHECK(s && lk_store_schema_version(s) == 2, "version 1 store migrated to 2: %s",
+          s ? "" : err.message);
+    klist l = {0};
+    lk_template_meta m;
+    CHECK(s && lk_store_template_keys_list(s, collect_wrapped, &l, &err) == LK_OK && l.n == 0,
+          "template_keys exists and is empty: %s", err.message);
+    CHECK(s && lk_store_template_get(s, "0123456789abcdef0123456789abcdef", 2, &m, NULL, NULL,
+                                     &err) == LK_OK && !strcmp(m.key_id, "tk"),
+          "the version 1 template survives the migration");
+    CHECK(s && lk_store_template_keys_add(s, "d0", "tk", (const uint8_t *)"x", 1, true, &err) ==
+              LK_OK, "the migrated store takes data keys: %s", err.message);
+    CHECK(s && lk_store_integrity_check(s, &err) == LK_OK, "integrity: %s", err.message);
+    lk_store_close(s);
+    s = lk_store_open(u, &err);
+    CHECK(s && lk_store_schema_version(s) == 2, "reopened at version 2");
+    lk_store_close(s);
+}
+
 enum { THREADS = 12, PER_THREAD = 20 };
 
 static void test_concurrency(const char *url, const lk_keyring *kr)
@@ -491,7 +694,8 @@ int main(void)
             CHECK(stat(file, &st) == 0 && (st.st_mode & 077) == 0,
                   "database file mode 0600 (%o)", st.st_mode & 0777);
         }
-        CHECK(lk_store_schema_version(s) == 1, "schema version 1");
+        CHECK(lk_store_schema_version(s) == 2 && LK_STORE_SCHEMA_VERSION == 2,
+              "schema version 2");
         CHECK(lk_store_integrity_check(s, &err) == LK_OK, "integrity check: %s", err.message);
         test_templates(s);
         test_apikeys(s);
@@ -504,6 +708,7 @@ int main(void)
         lk_store_close(s);
         test_concurrency(url, kr);
         test_tamper_sql(url, kr);
+        test_template_keys(url, kr);
         if (pg_base) {
             /* A store whose table was dropped fails the integrity check. */
             CHECK(exec_sql(url, "DROP TABLE api_keys"), "drop a table");
@@ -515,11 +720,12 @@ int main(void)
         }
     }
     test_versions();
+    test_migration_v1();
     lk_keyring_free(kr);
 
     if (pg_base) {
-        const char *names[] = {"main", "newer", "other"};
-        for (size_t i = 0; i < 3; i++)
+        const char *names[] = {"main", "newer", "other", "v1"};
+        for (size_t i = 0; i < 4; i++)
             if (!pg_schema(names[i], false))
                 fprintf(stderr, "note: could not drop schema lkt_%ld_%s\n", (long)getpid(),
                         names[i]);
