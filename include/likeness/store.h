@@ -147,6 +147,25 @@ lk_code lk_store_apikey_list(lk_store *s, bool (*fn)(const lk_apikey_meta *k, vo
  * commits. r is updated with seq and hashes. */
 lk_code lk_store_audit_append(lk_store *s, lk_audit_record *r, const lk_keyring *kr,
                               unsigned checkpoint_interval, lk_error *err);
+/* A change to the templates that must commit together with its audit
+ * record: an enrolment is not acknowledged unless audited, and an audited
+ * enrolment or erasure is never lost or left half done by a crash. */
+typedef enum { LK_CHANGE_NONE = 0, LK_CHANGE_PUT, LK_CHANGE_DELETE } lk_change_kind;
+typedef struct lk_store_change {
+    lk_change_kind kind;
+    const lk_template_meta *meta; /* PUT */
+    const uint8_t *record;        /* PUT */
+    size_t len;                   /* PUT */
+    const char *template_id;      /* DELETE */
+} lk_store_change;
+
+/* lk_store_audit_append, with the change applied in the same transaction:
+ * both commit or neither does. A DELETE of an absent template fails with
+ * LK_ERR_NOT_FOUND and appends nothing; a PUT of an existing id with
+ * LK_ERR_INVALID_ARGUMENT. */
+lk_code lk_store_audit_append_change(lk_store *s, lk_audit_record *r,
+                                     const lk_store_change *change, const lk_keyring *kr,
+                                     unsigned checkpoint_interval, lk_error *err);
 /* Signs a checkpoint of the current head now (e.g. at shutdown); no-op on an
  * empty chain or if the head already has one. */
 lk_code lk_store_audit_checkpoint(lk_store *s, const lk_keyring *kr, lk_error *err);

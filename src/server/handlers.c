@@ -343,9 +343,12 @@ void srv_core_close(lk_server *s)
 
 /* ---- audit ---- */
 
-static lk_code audit(lk_server *s, const srv_request *r, lk_audit_op op, const char *template_id,
-                     const char *decision, double score, double threshold, const char *reasons,
-                     int status)
+/* Appends one audit record, with a template change in the same
+ * transaction when change is not NULL. On failure *e (if given) says why. */
+static lk_code audit_change(lk_server *s, const srv_request *r, lk_audit_op op,
+                            const char *template_id, const char *decision, double score,
+                            double threshold, const char *reasons, int status,
+                            const lk_store_change *change, lk_error *eout)
 {
     lk_audit_record rec;
     lk_audit_record_init(&rec, op);
@@ -360,10 +363,21 @@ static lk_code audit(lk_server *s, const srv_request *r, lk_audit_op op, const c
     snprintf(rec.reasons, sizeof rec.reasons, "%s", reasons ? reasons : "");
     rec.status = status;
     lk_error e;
-    lk_code rc = lk_store_audit_append(s->store, &rec, s->keys, s->cfg.checkpoint_interval, &e);
-    if (rc)
+    lk_code rc = lk_store_audit_append_change(s->store, &rec, change, s->keys,
+                                              s->cfg.checkpoint_interval, &e);
+    if (rc && rc != LK_ERR_NOT_FOUND)
         srv_log("%s: audit append failed: %s", r->request_id, e.message);
+    if (eout)
+        *eout = e;
     return rc;
+}
+
+static lk_code audit(lk_server *s, const srv_request *r, lk_audit_op op, const char *template_id,
+                     const char *decision, double score, double threshold, const char *reasons,
+                     int status)
+{
+    return audit_change(s, r, op, template_id, decision, score, threshold, reasons, status, NULL,
+                        NULL);
 }
 
 void srv_purge_expired(lk_server *s)
@@ -873,22 +887,22 @@ static void handle_enrol(lk_server *s, srv_request *r, srv_worker_state *w)
     uint8_t *rec = NULL;
     size_t len = 0;
     sync_keys(s, false);
-    if (lk_template_seal(s->keys, &b, w->acc, w->k, &rec, &len, meta.key_id, &e) ||
-        lk_store_template_put(s->store, &meta, rec, len, &e)) {
-        free(rec);
+    if (lk_template_seal(s->keys, &b, w->acc, w->k, &rec, &len, meta.key_id, &e)) {
         srv_log("%s: enrolment failed: %s", r->request_id, e.message);
         srv_problem(r, "internal-error", NULL);
         snprintf(reasons, sizeof reasons, "%s", lk_code_name(e.code));
         goto refused;
     }
+    /* The template and its audit record commit together: a crash leaves
+     * both or neither, and nothing is acknowledged that is not audited. */
+    lk_store_change change = {.kind = LK_CHANGE_PUT, .meta = &meta, .record = rec, .len = len};
+    lk_code arc = audit_change(s, r, LK_AUDIT_ENROL, meta.template_id, "ok", NAN, NAN, "", 201,
+                               &change, &e);
     free(rec);
-    if (audit(s, r, LK_AUDIT_ENROL, meta.template_id, "ok", NAN, NAN, "", 201)) {
-        /* Not acknowledged unless audited: take the template back out. */
-        lk_store_template_delete(s->store, meta.template_id, NULL);
-        srv_problem(r, "internal-error", "the enrolment could not be recorded in the audit log");
-        cJSON_Delete(qualities);
-        lk_api_request_clear(&q);
-        return;
+    if (arc) {
+        srv_problem(r, "internal-error", "the enrolment could not be stored and audited");
+        snprintf(reasons, sizeof reasons, "%s", lk_code_name(arc));
+        goto refused;
     }
     cJSON *j = template_json(&meta, false);
     cJSON_AddItemToObject(j, "quality", qualities);
@@ -915,7 +929,9 @@ static void handle_template(lk_server *s, srv_request *r)
     lk_error e;
     lk_template_meta meta;
     if (!strcmp(r->method, "DELETE")) {
-        lk_code rc = lk_store_template_delete(s->store, id, &e);
+        /* The erasure and its audit record commit together. */
+        lk_store_change change = {.kind = LK_CHANGE_DELETE, .template_id = id};
+        lk_code rc = audit_change(s, r, LK_AUDIT_DELETE, id, "ok", NAN, NAN, "", 204, &change, &e);
         if (rc == LK_ERR_NOT_FOUND) {
             cJSON *j = problem_new(r, "template-not-found", NULL);
             cJSON_AddStringToObject(j, "template_id", id);
@@ -927,7 +943,6 @@ static void handle_template(lk_server *s, srv_request *r)
             srv_problem(r, "internal-error", NULL);
             return;
         }
-        audit(s, r, LK_AUDIT_DELETE, id, "ok", NAN, NAN, "", 204);
         srv_reply_text(r, 204, "", NULL);
         return;
     }

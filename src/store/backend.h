@@ -50,8 +50,9 @@ typedef struct lk_store_backend {
     lk_code (*apikey_list)(void *h, bool (*fn)(const lk_apikey_meta *k, void *ctx), void *ctx,
                            lk_error *err);
 
-    lk_code (*audit_append)(void *h, lk_audit_record *r, const lk_keyring *kr,
-                            unsigned checkpoint_interval, lk_error *err);
+    /* change may be NULL; otherwise applied in the append's transaction. */
+    lk_code (*audit_append)(void *h, lk_audit_record *r, const lk_store_change *change,
+                            const lk_keyring *kr, unsigned checkpoint_interval, lk_error *err);
     lk_code (*audit_checkpoint)(void *h, const lk_keyring *kr, lk_error *err);
     lk_code (*audit_list)(void *h, uint64_t after, uint64_t limit, lk_store_record_fn fn,
                           void *ctx, lk_error *err);

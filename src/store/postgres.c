@@ -1207,6 +1207,7 @@ static lk_code insert_checkpoint(pgop *o, const lk_audit_checkpoint *c, lk_error
 typedef struct append_args {
     lk_audit_record *r;
     lk_audit_record saved;
+    const lk_store_change *change;
     const lk_keyring *kr;
     unsigned interval;
 } append_args;
@@ -1216,7 +1217,23 @@ static lk_code append_fn(pgop *o, void *arg, lk_error *err)
     append_args *a = arg;
     lk_audit_record *r = a->r;
     *r = a->saved; /* a retried attempt starts from the caller's record */
-    lk_code rc = audit_lock(o, err);
+    lk_code rc = LK_OK;
+    /* In the append's transaction: the change and the record commit together. */
+    if (a->change && a->change->kind == LK_CHANGE_PUT) {
+        tput t = {a->change->meta, a->change->record, a->change->len};
+        rc = tput_fn(o, &t, err);
+    } else if (a->change && a->change->kind == LK_CHANGE_DELETE) {
+        wcount w = {"DELETE FROM templates WHERE template_id = $1", "cannot delete a template",
+                    {0}, 0};
+        p_text(&w.q, a->change->template_id);
+        rc = wcount_fn(o, &w, err);
+        if (rc == LK_OK && w.rows == 0)
+            rc = lk_error_set(err, LK_ERR_NOT_FOUND, "template %s does not exist",
+                              a->change->template_id);
+    }
+    if (rc != LK_OK)
+        return rc;
+    rc = audit_lock(o, err);
     uint64_t last = 0;
     uint8_t prev[32];
     if (rc == LK_OK)
@@ -1260,10 +1277,12 @@ static lk_code append_fn(pgop *o, void *arg, lk_error *err)
     return rc;
 }
 
-static lk_code pg_audit_append(void *h, lk_audit_record *r, const lk_keyring *kr,
-                               unsigned interval, lk_error *err)
+static lk_code pg_audit_append(void *h, lk_audit_record *r, const lk_store_change *change,
+                               const lk_keyring *kr, unsigned interval, lk_error *err)
 {
-    append_args a = {r, *r, kr, interval};
+    if (change && change->kind == LK_CHANGE_PUT && change->len > INT32_MAX)
+        return lk_error_set(err, LK_ERR_INVALID_ARGUMENT, "template record too large");
+    append_args a = {r, *r, change, kr, interval};
     lk_code rc = run(h, "BEGIN", append_fn, &a, err);
     if (rc != LK_OK) {
         /* Nothing was appended: do not hand back a seq or hash that is not stored. */

@@ -936,6 +936,7 @@ static lk_code write_txn(sq *s, write_fn fn, void *arg, lk_error *err)
 
 typedef struct append_args {
     lk_audit_record *r;
+    const lk_store_change *change;
     const lk_keyring *kr;
     unsigned interval;
 } append_args;
@@ -943,14 +944,22 @@ typedef struct append_args {
 static lk_code append_fn(sq *s, void *arg, lk_error *err)
 {
     append_args *a = arg;
+    lk_code rc = LK_OK;
+    /* Inside the write transaction: the change and the record commit together. */
+    if (a->change && a->change->kind == LK_CHANGE_PUT)
+        rc = sq_template_put(s, a->change->meta, a->change->record, a->change->len, err);
+    else if (a->change && a->change->kind == LK_CHANGE_DELETE)
+        rc = sq_template_delete(s, a->change->template_id, err);
+    if (rc != LK_OK)
+        return rc;
     return append_once(s, a->r, a->kr, a->interval, err);
 }
 
-static lk_code sq_audit_append(void *h, lk_audit_record *r, const lk_keyring *kr,
-                               unsigned interval, lk_error *err)
+static lk_code sq_audit_append(void *h, lk_audit_record *r, const lk_store_change *change,
+                               const lk_keyring *kr, unsigned interval, lk_error *err)
 {
     lk_audit_record saved = *r;
-    append_args a = {r, kr, interval};
+    append_args a = {r, change, kr, interval};
     lk_code rc = write_txn(h, append_fn, &a, err);
     if (rc != LK_OK) {
         /* Nothing was appended: do not hand back a seq or hash that is not stored. */

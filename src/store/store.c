@@ -471,16 +471,29 @@ lk_code lk_store_sign_checkpoint(const lk_keyring *kr, uint64_t seq, const uint8
     return lk_keyring_audit_sign(kr, msg, sizeof msg, c->signature, err);
 }
 
-lk_code lk_store_audit_append(lk_store *s, lk_audit_record *r, const lk_keyring *kr,
-                              unsigned checkpoint_interval, lk_error *err)
+lk_code lk_store_audit_append_change(lk_store *s, lk_audit_record *r,
+                                     const lk_store_change *change, const lk_keyring *kr,
+                                     unsigned checkpoint_interval, lk_error *err)
 {
     if (!s)
         return no_store(err);
     if (!r)
         return lk_error_set(err, LK_ERR_INVALID_ARGUMENT, "audit_append: no record");
+    if (change && change->kind == LK_CHANGE_PUT && (!change->meta || !change->record))
+        return lk_error_set(err, LK_ERR_INVALID_ARGUMENT, "audit_append: PUT without a template");
+    if (change && change->kind == LK_CHANGE_DELETE && !change->template_id)
+        return lk_error_set(err, LK_ERR_INVALID_ARGUMENT, "audit_append: DELETE without an id");
+    if (change && change->kind == LK_CHANGE_NONE)
+        change = NULL;
     lk_code rc;
-    LOCKED(s, rc = s->be->audit_append(s->h, r, kr, checkpoint_interval, err));
+    LOCKED(s, rc = s->be->audit_append(s->h, r, change, kr, checkpoint_interval, err));
     return rc;
+}
+
+lk_code lk_store_audit_append(lk_store *s, lk_audit_record *r, const lk_keyring *kr,
+                              unsigned checkpoint_interval, lk_error *err)
+{
+    return lk_store_audit_append_change(s, r, NULL, kr, checkpoint_interval, err);
 }
 
 lk_code lk_store_audit_checkpoint(lk_store *s, const lk_keyring *kr, lk_error *err)

@@ -659,6 +659,42 @@ static void test_concurrency(const char *url, const lk_keyring *kr)
     lk_store_close(b);
 }
 
+/* A template change and its audit record commit together or not at all. */
+static void test_audited_changes(const char *url, const lk_keyring *kr)
+{
+    lk_error err;
+    lk_store *s = lk_store_open(url, &err);
+    CHECK(s != NULL, "open for audited changes: %s", err.message);
+    if (!s)
+        return;
+    uint64_t head = lk_store_audit_head(s);
+    uint64_t count = lk_store_template_count(s);
+    const uint8_t rec[4] = {9, 8, 7, 6};
+    char id[33];
+    snprintf(id, sizeof id, "%032d", 4242);
+    lk_template_meta m = meta(id, "t1", 0);
+    lk_audit_record r;
+    fill(&r, 1);
+    lk_store_change put = {.kind = LK_CHANGE_PUT, .meta = &m, .record = rec, .len = sizeof rec};
+    CHECK(lk_store_audit_append_change(s, &r, &put, kr, 0, &err) == LK_OK &&
+              r.seq == head + 1 && lk_store_template_count(s) == count + 1,
+          "PUT with its record: both stored (%s)", err.message);
+    fill(&r, 2);
+    CHECK(lk_store_audit_append_change(s, &r, &put, kr, 0, &err) == LK_ERR_INVALID_ARGUMENT &&
+              lk_store_audit_head(s) == head + 1,
+          "PUT of an existing id: refused, no record appended");
+    lk_store_change del = {.kind = LK_CHANGE_DELETE, .template_id = id};
+    fill(&r, 3);
+    CHECK(lk_store_audit_append_change(s, &r, &del, kr, 0, &err) == LK_OK &&
+              lk_store_audit_head(s) == head + 2 && lk_store_template_count(s) == count,
+          "DELETE with its record: both done (%s)", err.message);
+    fill(&r, 4);
+    CHECK(lk_store_audit_append_change(s, &r, &del, kr, 0, &err) == LK_ERR_NOT_FOUND &&
+              lk_store_audit_head(s) == head + 2,
+          "DELETE of an absent template: not found, no record appended");
+    lk_store_close(s);
+}
+
 int main(void)
 {
     if (sodium_init() < 0)
@@ -706,6 +742,7 @@ int main(void)
         CHECK(s && lk_store_template_count(s) == 3 && lk_store_audit_head(s) == 25,
               "reopened: %s", err.message);
         lk_store_close(s);
+        test_audited_changes(url, kr);
         test_concurrency(url, kr);
         test_tamper_sql(url, kr);
         test_template_keys(url, kr);
