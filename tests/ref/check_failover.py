@@ -323,14 +323,16 @@ try:
     check(set(ids) <= audited, f"psql: every template answered 201 has its enrolment audit "
           f"record ({len(set(ids) - audited)} missing)")
     # Rows no client was told about: enrolments in flight when replica 1
-    # died. Committed before the kill, they are stored but the client got an
-    # error; if the kill fell between the template's and the audit record's
-    # commits, the template has no audit record.
+    # died, committed before the kill (the client got an error). The template
+    # and its audit record commit in one transaction, so every stored
+    # template has its enrolment record.
     known = set(ids) | {tid}
     unacked = stored - known
     unaudited = stored - audited - {tid} - set(ids)
     print(f"  templates stored without a 201 to any client: {len(unacked)}, of them without "
           f"an enrolment audit record: {len(unaudited)}")
+    check(not unaudited, f"every stored template has its enrolment audit record "
+          f"({len(unaudited)} without)")
     check(len(unacked) <= len(in_flight) + THREADS,
           f"templates stored without a 201 come only from requests in flight at the kill "
           f"({len(unacked)} <= {len(in_flight)} in flight)")
