@@ -5,13 +5,14 @@ set -euo pipefail
 
 PKGS=(
   build-essential cmake pkg-config git
-  libturbojpeg0-dev libpng-dev libexif-dev libxml2-dev
+  libturbojpeg0-dev libpng-dev zlib1g-dev libexif-dev libxml2-dev
   libcjson-dev libsodium-dev libssl-dev libsqlite3-dev libinih-dev libmicrohttpd-dev
   libgnutls28-dev libpq-dev postgresql postgresql-client
   opencv-data
   openssl curl ca-certificates
   python3 python3-numpy python3-pil python3-skimage python3-sklearn python3-opencv python3-nacl python3-yaml
-  valgrind wrk nginx systemd
+  valgrind wrk nginx systemd testssl.sh
+  clang libclang-rt-14-dev
 )
 # Node.js and npm run the API-spec lint and schema validation (tests/api);
 # Debian's packages only if the machine has no node of its own.

@@ -30,6 +30,7 @@
 #include <stdlib.h>
 #include <string.h>
 #include <turbojpeg.h>
+#include <zlib.h>
 
 /* Ancillary PNG chunks and EXIF blocks larger than this are refused. A JPEG
  * APP1 segment holds at most 65,533 bytes (ITU-T T.81 B.1.1.4: 16-bit segment
@@ -144,6 +145,7 @@ typedef struct jpeg_markers {
     const uint8_t *exif; /* APP1 payload starting with "Exif\0\0", or NULL */
     size_t exif_len;
     int sof;       /* the first SOFn marker code, 0 if none was seen */
+    unsigned width, height; /* of that frame header; height 0: defined by a DNL marker */
     int precision; /* sample precision from that frame header */
 } jpeg_markers;
 
@@ -183,6 +185,10 @@ static void jpeg_scan_markers(const uint8_t *b, size_t len, jpeg_markers *m)
         } else if (is_sof(code) && !m->sof && n >= 1) {
             m->sof = code;
             m->precision = p[0];
+            if (n >= 5) { /* P, Y, X (T.81 B.2.2, frame header) */
+                m->height = ((unsigned)p[1] << 8) | p[2];
+                m->width = ((unsigned)p[3] << 8) | p[4];
+            }
         }
         pos += seglen;
     }
@@ -241,6 +247,14 @@ static lk_code decode_jpeg(const uint8_t *bytes, size_t len, const lk_decode_lim
                             "is not accepted: save it as a baseline or progressive JPEG or as PNG",
                             m.sof);
 
+    /* The declared size is checked from the frame header first: TurboJPEG
+     * refuses sides over 65500 as a damaged file, but such a file is too
+     * large, not corrupt. */
+    if (m.sof && m.width && m.height) {
+        lk_code lc = check_limits(m.width, m.height, limits, "JPEG", err);
+        if (lc != LK_OK)
+            return lc;
+    }
     tjhandle tj = tjInitDecompress();
     if (!tj)
         return lk_error_set(err, LK_ERR_NOMEM, "cannot start the JPEG decoder (out of memory)");
@@ -370,9 +384,16 @@ static void png_on_error(png_structp png, png_const_charp msg)
 static void png_on_warning(png_structp png, png_const_charp msg)
 {
     /* Warnings (e.g. a bad CRC in an ancillary chunk, which libpng then
-     * discards) do not affect the pixels. */
-    (void)png;
-    (void)msg;
+     * discards) do not affect the pixels. One kind does matter: compressed
+     * data beyond the image's scanlines, which libpng reports as a benign
+     * error ("Too much image data", "Extra compressed data") and then keeps
+     * inflating to the end of the IDAT chunks. The decompressed data of a
+     * PNG is exactly its filtered scanlines (PNG specification, sections
+     * 10.1 and 11.2.4), so the file is damaged; stopping at the first
+     * surplus byte also keeps a small upload from costing a worker minutes
+     * of inflating (a decompression bomb). */
+    if (msg && (strstr(msg, "Too much image data") || strstr(msg, "xtra compressed data")))
+        png_error(png, "compressed image data continues beyond the last row");
 }
 
 /* Reads IHDR from the raw bytes (PNG spec 11.2.2: the first chunk, 13 bytes
@@ -403,10 +424,91 @@ static lk_code png_check_header(const uint8_t *bytes, size_t len, const lk_decod
     return check_limits(w, h, limits, "PNG", err);
 }
 
+/* Bytes of filtered scanlines a PNG's IDAT stream must inflate to: one
+ * filter byte plus the packed samples per row, per Adam7 pass when
+ * interlaced (PNG specification, sections 7.2 and 8.2). 0 for an unknown
+ * colour type or bit depth (libpng then reports the file). */
+static uint64_t png_scanline_bytes(uint32_t w, uint32_t h, int depth, int ctype, int interlace)
+{
+    int channels = ctype == 0 ? 1 : ctype == 2 ? 3 : ctype == 3 ? 1 : ctype == 4 ? 2
+                 : ctype == 6 ? 4 : 0;
+    if (!channels || !(depth == 1 || depth == 2 || depth == 4 || depth == 8 || depth == 16))
+        return 0;
+    const uint64_t bits = (uint64_t)channels * (uint64_t)depth;
+    if (!interlace)
+        return (uint64_t)h * (1 + ((uint64_t)w * bits + 7) / 8);
+    static const int x0[7] = {0, 4, 0, 2, 0, 1, 0}, y0[7] = {0, 0, 4, 0, 2, 0, 1};
+    static const int dx[7] = {8, 8, 4, 4, 2, 2, 1}, dy[7] = {8, 8, 8, 4, 4, 2, 2};
+    uint64_t total = 0;
+    for (int p = 0; p < 7; p++) {
+        uint64_t pw = w > (uint32_t)x0[p] ? (w - (uint32_t)x0[p] + (uint32_t)dx[p] - 1) / (uint32_t)dx[p] : 0;
+        uint64_t ph = h > (uint32_t)y0[p] ? (h - (uint32_t)y0[p] + (uint32_t)dy[p] - 1) / (uint32_t)dy[p] : 0;
+        if (pw && ph)
+            total += ph * (1 + (pw * bits + 7) / 8);
+    }
+    return total;
+}
+
+/* A decompression bomb check before libpng runs: libpng inflates every
+ * IDAT byte to the end of the stream, however far beyond the image's
+ * scanlines it goes, and only then complains. Here the stream is inflated
+ * into a scratch buffer and refused at the first byte past the scanlines,
+ * so a small upload cannot cost more inflating than its image is worth.
+ * Other damage is left for libpng to report. */
+static lk_code png_check_idat(const uint8_t *b, size_t len, lk_error *err)
+{
+    const uint32_t w = be32(b + 16), h = be32(b + 20);
+    const uint64_t need = png_scanline_bytes(w, h, b[24], b[25], b[28]);
+    if (!need)
+        return LK_OK;
+    z_stream z;
+    memset(&z, 0, sizeof z);
+    if (inflateInit(&z) != Z_OK)
+        return lk_error_set(err, LK_ERR_NOMEM, "cannot start the PNG integrity check (out of memory)");
+    uint8_t out[16384];
+    uint64_t total = 0;
+    int zr = Z_OK;
+    lk_code rc = LK_OK;
+    size_t pos = 8;
+    while (rc == LK_OK && zr == Z_OK && len - pos >= 12) {
+        const uint32_t n = be32(b + pos);
+        if (n > len - pos - 12)
+            break; /* truncated: libpng says so */
+        const uint8_t *type = b + pos + 4;
+        if (!memcmp(type, "IEND", 4))
+            break;
+        if (!memcmp(type, "IDAT", 4)) {
+            z.next_in = (Bytef *)(b + pos + 8);
+            z.avail_in = n;
+            while (z.avail_in > 0 && zr == Z_OK) {
+                z.next_out = out;
+                z.avail_out = sizeof out;
+                zr = inflate(&z, Z_NO_FLUSH);
+                total += sizeof out - z.avail_out;
+                if (total > need) {
+                    rc = lk_error_set(err, LK_ERR_IMAGE_CORRUPT,
+                                      "the PNG data is damaged: its compressed image data "
+                                      "inflates to more than the %ux%u image's %llu bytes of "
+                                      "rows; send the original file again",
+                                      w, h, (unsigned long long)need);
+                    break;
+                }
+                if (zr == Z_BUF_ERROR)
+                    zr = Z_OK; /* needs the next IDAT chunk */
+            }
+        }
+        pos += 12 + (size_t)n;
+    }
+    inflateEnd(&z);
+    return rc;
+}
+
 static lk_code decode_png(const uint8_t *bytes, size_t len, const lk_decode_limits *limits,
                           lk_image **out, lk_error *err)
 {
     lk_code hc = png_check_header(bytes, len, limits, err);
+    if (hc == LK_OK)
+        hc = png_check_idat(bytes, len, err);
     if (hc != LK_OK)
         return hc;
     const int max_side = limits && limits->max_side > 0 ? limits->max_side : LK_DEFAULT_MAX_SIDE;

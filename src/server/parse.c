@@ -310,6 +310,9 @@ static lk_code set_text(lk_api_request *req, lk_api_kind kind, const char *name,
             return bad(req, name, err, "target_fmr must be a number in (0, 1)");
         memcpy(num, v, n);
         num[n] = '\0';
+        /* Decimal notation only (strtod also reads hex floats, inf, nan). */
+        if (strspn(num, "0123456789.eE+-") != n)
+            return bad(req, name, err, "target_fmr must be a decimal number in (0, 1)");
         char *e;
         errno = 0;
         double x = strtod(num, &e);
@@ -444,11 +447,60 @@ static lk_code json_image(lk_api_request *req, lk_api_kind kind, const char *nam
     return set_image(req, kind, name, bytes, n, err);
 }
 
+/* true if a JSON text holds the escape \u0000 in a string; field gets the
+ * top-level member it is in ("" if none). cJSON decodes the escape to a NUL
+ * and keeps no length, so everything after it would silently be dropped
+ * from the value: such strings are refused instead. The scan follows
+ * strings and nesting only (the text is parsed properly afterwards). */
+static bool json_nul_escape(const uint8_t *b, size_t n, char field[32])
+{
+    int depth = 0;
+    bool in_str = false;
+    size_t start = 0;
+    char key[32] = "";
+    for (size_t i = 0; i < n; i++) {
+        const uint8_t c = b[i];
+        if (in_str) {
+            if (c == '\\') {
+                if (i + 5 < n && b[i + 1] == 'u' && b[i + 2] == '0' && b[i + 3] == '0' &&
+                    b[i + 4] == '0' && b[i + 5] == '0') {
+                    snprintf(field, 32, "%s", key);
+                    return true;
+                }
+                i++; /* the escaped character: "\\u0000" is not an escape of U+0000 */
+            } else if (c == '"') {
+                in_str = false;
+                size_t j = i + 1;
+                while (j < n && (b[j] == ' ' || b[j] == '\t' || b[j] == '\r' || b[j] == '\n'))
+                    j++;
+                if (depth == 1 && j < n && b[j] == ':') {
+                    size_t len = i - start < sizeof key - 1 ? i - start : sizeof key - 1;
+                    memcpy(key, b + start, len);
+                    key[len] = '\0';
+                }
+            }
+            continue;
+        }
+        if (c == '"') {
+            in_str = true;
+            start = i + 1;
+        } else if (c == '{' || c == '[') {
+            depth++;
+        } else if (c == '}' || c == ']') {
+            depth--;
+        }
+    }
+    return false;
+}
+
 static lk_code parse_json(lk_api_request *req, lk_api_kind kind, const uint8_t *body, size_t len,
                           lk_error *err)
 {
     if (!lk_utf8_valid(body, len))
         return bad(req, "", err, "request body is not valid UTF-8 (RFC 8259 section 8.1)");
+    char nul_field[32];
+    if (json_nul_escape(body, len, nul_field))
+        return bad(req, nul_field, err, "JSON strings may not contain U+0000 (\\u0000)");
     const char *endp = NULL;
     cJSON *root = cJSON_ParseWithLengthOpts((const char *)body, len, &endp, false);
     if (!root)

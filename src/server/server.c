@@ -1,6 +1,7 @@
 /* The HTTPS front: libmicrohttpd with its GnuTLS backend, one polling thread
  * reading requests, a bounded worker pool doing the work (handlers.c), the
  * connection suspended meanwhile. */
+#include <ctype.h>
 #include <errno.h>
 #include <fcntl.h>
 #include <gnutls/gnutls.h>
@@ -268,7 +269,16 @@ static enum MHD_Result on_request(void *cls, struct MHD_Connection *conn, const 
         if (rid && valid_request_id(rid))
             snprintf(r->request_id, sizeof r->request_id, "%s", rid);
         r->route = route_of(url, r->path_arg);
+        /* The path is echoed in problem documents (instance): keep it valid
+         * UTF-8 and printable there. */
         snprintf(r->path, sizeof r->path, "%.255s", url);
+        if (!lk_utf8_valid((const uint8_t *)r->path, strlen(r->path)))
+            for (char *c = r->path; *c; c++)
+                if ((unsigned char)*c >= 0x80)
+                    *c = '?';
+        for (char *c = r->path; *c; c++)
+            if ((unsigned char)*c < 0x20 || *c == 0x7f)
+                *c = '?';
         const char *ct = MHD_lookup_connection_value(conn, MHD_HEADER_KIND, MHD_HTTP_HEADER_CONTENT_TYPE);
         snprintf(r->content_type, sizeof r->content_type, "%s", ct ? ct : "");
         if (r->route == RT_AUDIT) {
@@ -397,6 +407,32 @@ static void free_state(void *st)
     srv_worker_state_free(st);
 }
 
+/* Percent-decoding of the path and query (RFC 3986 section 2.1), except
+ * that %00 stays as it is: a decoded NUL would end the C string early, and
+ * "/v1/templates/<id>%00../x" would then name <id>. Kept encoded, it makes
+ * the path match nothing. */
+static size_t unescape(void *cls, struct MHD_Connection *conn, char *s)
+{
+    (void)cls;
+    (void)conn;
+    char *out = s;
+    const char *in = s;
+    while (*in) {
+        if (in[0] == '%' && isxdigit((unsigned char)in[1]) && isxdigit((unsigned char)in[2])) {
+            char hex[3] = {in[1], in[2], 0};
+            int v = (int)strtol(hex, NULL, 16);
+            if (v != 0) {
+                *out++ = (char)v;
+                in += 3;
+                continue;
+            }
+        }
+        *out++ = *in++;
+    }
+    *out = '\0';
+    return (size_t)(out - s);
+}
+
 static void mhd_log(void *cls, const char *fmt, va_list ap)
 {
     (void)cls;
@@ -503,6 +539,7 @@ lk_code lk_server_listen(lk_server *s, lk_error *err)
     opts[n++] = (struct MHD_OptionItem){MHD_OPTION_CONNECTION_LIMIT,
                                         (intptr_t)cfg->max_connections, NULL};
     opts[n++] = (struct MHD_OptionItem){MHD_OPTION_NOTIFY_COMPLETED, (intptr_t)on_completed, s};
+    opts[n++] = (struct MHD_OptionItem){MHD_OPTION_UNESCAPE_CALLBACK, (intptr_t)unescape, NULL};
     opts[n++] = (struct MHD_OptionItem){MHD_OPTION_END, 0, NULL};
     s->daemon = MHD_start_daemon(flags, (uint16_t)cfg->port, NULL, NULL, on_request, s,
                                  MHD_OPTION_ARRAY, opts, MHD_OPTION_END);
