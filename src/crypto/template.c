@@ -339,6 +339,18 @@ lk_code lk_template_reseal(const lk_keyring *kr, const char *template_id, const 
         c = unknown_key(&h, err);
     else
         c = open_raw(&h, record, key, pt, err);
+    /* The same step 5 as lk_template_open (docs/template-format.md): a record
+     * holding a value that is not finite is refused, not carried forward. */
+    for (size_t i = 0; c == LK_OK && i < h.dim; i++) {
+        uint64_t u = 0;
+        for (int k = 7; k >= 0; k--)
+            u = u << 8 | pt[8 * i + (size_t)k];
+        double v;
+        memcpy(&v, &u, 8);
+        if (!isfinite(v))
+            c = lk_error_set(err, LK_ERR_TEMPLATE_INVALID,
+                             "template record holds a value that is not finite");
+    }
     /* The model id and digest are authentic now: carry them over unchanged. */
     if (c == LK_OK) {
         const char *kid;

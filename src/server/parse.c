@@ -507,7 +507,7 @@ static lk_code parse_json(lk_api_request *req, lk_api_kind kind, const uint8_t *
         return bad(req, "", err, "request body is not valid JSON");
     /* Trailing whitespace is allowed, anything else after the value is not. */
     for (const char *q = endp; q && q < (const char *)body + len; q++)
-        if (!strchr(" \t\r\n", *q)) {
+        if (!memchr(" \t\r\n", *q, 4)) { /* not strchr: it would match a NUL byte */
             cJSON_Delete(root);
             return bad(req, "", err, "text after the JSON value");
         }
