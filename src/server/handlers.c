@@ -210,6 +210,13 @@ void srv_problem_page(srv_request *r)
     srv_reply_text(r, 200, "text/plain; charset=utf-8", t);
 }
 
+static void template_not_found(srv_request *r, const char *id)
+{
+    cJSON *j = problem_new(r, "template-not-found", NULL);
+    cJSON_AddStringToObject(j, "template_id", id);
+    problem_send(r, j);
+}
+
 static void problem_field(srv_request *r, const char *detail, const char *field)
 {
     cJSON *j = problem_new(r, "malformed-request", detail);
@@ -646,9 +653,7 @@ static bool load_template(lk_server *s, srv_request *r, srv_worker_state *w, con
     size_t len = 0;
     lk_code rc = lk_store_template_get(s->store, id, srv_unix_ms(), meta, &rec, &len, &e);
     if (rc == LK_ERR_NOT_FOUND) {
-        cJSON *j = problem_new(r, "template-not-found", NULL);
-        cJSON_AddStringToObject(j, "template_id", id);
-        problem_send(r, j);
+        template_not_found(r, id);
         return false;
     }
     if (rc) {
@@ -933,9 +938,7 @@ static void handle_template(lk_server *s, srv_request *r)
         lk_store_change change = {.kind = LK_CHANGE_DELETE, .template_id = id};
         lk_code rc = audit_change(s, r, LK_AUDIT_DELETE, id, "ok", NAN, NAN, "", 204, &change, &e);
         if (rc == LK_ERR_NOT_FOUND) {
-            cJSON *j = problem_new(r, "template-not-found", NULL);
-            cJSON_AddStringToObject(j, "template_id", id);
-            problem_send(r, j);
+            template_not_found(r, id);
             return;
         }
         if (rc) {
@@ -948,9 +951,7 @@ static void handle_template(lk_server *s, srv_request *r)
     }
     lk_code rc = lk_store_template_get(s->store, id, srv_unix_ms(), &meta, NULL, NULL, &e);
     if (rc == LK_ERR_NOT_FOUND) {
-        cJSON *j = problem_new(r, "template-not-found", NULL);
-        cJSON_AddStringToObject(j, "template_id", id);
-        problem_send(r, j);
+        template_not_found(r, id);
         return;
     }
     if (rc) {
