@@ -1,9 +1,10 @@
 /* likeness learn module: comparison pairs, a linear two-class SVM, feature
  * standardisation and PCA, Platt calibration, and verification metrics.
  *
- * Vocabulary follows ISO/IEC 2382-37 and ISO/IEC 19795-1: a "genuine"
- * comparison is between two samples of one identity (a mated pair), an
- * "impostor" comparison between two identities. Higher comparison scores
+ * Vocabulary follows ISO/IEC 2382-37 and ISO/IEC 19795-1 (recalled from
+ * memory): a mated comparison is between two samples of one identity, a
+ * non-mated comparison between two identities; the code's "genuine" and
+ * "impostor" names mean mated and non-mated. Higher comparison scores
  * mean "more likely the same identity". Matrices are dense, row-major. */
 #ifndef LIKENESS_LEARN_H
 #define LIKENESS_LEARN_H

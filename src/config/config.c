@@ -96,7 +96,7 @@ static lk_code set_key(parse_ctx *p, const key_def *k, const char *value)
 {
     char *base = (char *)p->c;
     void *field = base + k->offset;
-    /* libinih reads lines of at most 199 characters; the default priority
+    /* libinih reads lines of at most 198 characters; the default priority
      * string is longer, so it has a short name. */
     if (!strcmp(k->name, "tls_priorities") && !strcmp(value, "default"))
         value = LK_CONFIG_TLS_PRIORITIES;
@@ -248,8 +248,9 @@ lk_code lk_config_load(lk_config *c, const char *path, lk_error *err)
         if (!f)
             return lk_error_set(err, LK_ERR_CONFIG, "cannot read configuration %s: %s", path,
                                 strerror(errno));
-        /* libinih (as Debian builds it) splits lines longer than 199
-         * characters, which would misread them: refuse them plainly. */
+        /* libinih (as Debian builds it, INI_MAX_LINE 200 bytes with the
+         * newline and the NUL) splits longer lines and would misread them:
+         * refuse them plainly. */
         int ch, col = 0, lineno = 1;
         while ((ch = getc(f)) != EOF) {
             if (ch == '\n') {

@@ -922,7 +922,7 @@ lk_code lk_model_operating_point_for_fmr(const lk_model *m, double target_fmr,
         return lk_error_set(err, LK_ERR_INVALID_ARGUMENT,
                             "target FMR %g is below the smallest the model was measured at "
                             "(%g); choose a target FMR of at least %g or train with more "
-                            "impostor comparisons", target_fmr, m->ops[0].target_fmr,
+                            "non-mated comparisons", target_fmr, m->ops[0].target_fmr,
                             m->ops[0].target_fmr);
     if (row)
         *row = *r;

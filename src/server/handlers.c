@@ -53,7 +53,7 @@ static const problem_def problems[] = {
      "too far. The 'reasons' member names which; take a new photo."},
     {"unsupported-image", 422, "Unsupported image",
      "The image is not a JPEG or PNG, or a variant of them that is not supported. Send a baseline "
-     "or progressive JPEG, or an 8-bit PNG."},
+     "or progressive JPEG, or a PNG."},
     {"corrupt-image", 422, "Corrupt image",
      "The image data is truncated or damaged. Send the file again, unmodified."},
     {"image-too-large", 422, "Image too large",

@@ -110,6 +110,7 @@ static enum MHD_Result send_reply(struct MHD_Connection *conn, srv_request *r)
     MHD_add_response_header(resp, "X-Request-Id", r->request_id);
     MHD_add_response_header(resp, "Cache-Control", "no-store");
     MHD_add_response_header(resp, "X-Content-Type-Options", "nosniff");
+    /* One year, the common practice for HSTS max-age (RFC 6797 section 6.1.1). */
     MHD_add_response_header(resp, "Strict-Transport-Security", "max-age=31536000");
     for (int i = 0; i < o->n_headers; i++)
         MHD_add_response_header(resp, o->headers[i][0], o->headers[i][1]);

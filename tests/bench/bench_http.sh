@@ -9,6 +9,7 @@
 set -euo pipefail
 cd "$(dirname "$0")/../.."
 ROOT=$PWD
+. tests/lib/service.sh
 SECS=${1:-30}
 CONNS=${2:-8}
 BIN=${BIN:-$ROOT/build-release/bin}
@@ -24,38 +25,21 @@ T=$(mktemp -d)
 PORT=$((20000 + RANDOM % 20000))
 cleanup() { [ -n "${PID:-}" ] && kill "$PID" 2>/dev/null; wait 2>/dev/null; rm -rf "$T"; }
 trap cleanup EXIT
-bash certs-example/make-dev-certs.sh "$T/tls" >/dev/null
-"$BIN/likeness" keys init --key-file "$T/keys" >/dev/null
-cat > "$T/cfg.ini" <<INI
-[server]
-port = $PORT
-cert_file = tls/server.crt
-key_file = tls/server.key
-queue_depth = 256
-[model]
-file = $ROOT/models/likeness-lfw.lkmodel
-[store]
-url = sqlite:$T/store.db
-[keys]
-file = keys
-[limits]
+lk_service_setup "$T" "$PORT" "queue_depth = 256" "[limits]
 rate_per_second = 1000000
-burst = 1000000
-INI
-TOKEN=$("$BIN/likeness" keys api-create --config "$T/cfg.ini" --name bench --scopes verify,enrol 2>/dev/null)
+burst = 1000000"
+TOKEN=$(lk_api_key "$T/cfg.ini" bench verify,enrol)
 export TOKEN
-"$BIN/likenessd" --config "$T/cfg.ini" 2>"$T/log" &
-PID=$!
-for _ in $(seq 50); do curl -sk "https://127.0.0.1:$PORT/healthz" >/dev/null && break; sleep 0.2; done
+lk_service_start "$T"
+PID=$LK_PID
 U=https://127.0.0.1:$PORT
+lk_wait_healthy "$U/healthz" "$T/tls/ca.crt" 50 "$PID" ||
+  { echo "bench_http: likenessd did not start" >&2; tail -20 "$T/log" >&2; exit 1; }
 
 # Multipart body of the two images, and of the probe plus a template id.
 B=lkbench7b1e
-mk_part() { printf -- '--%s\r\nContent-Disposition: form-data; name="%s"; filename="%s"\r\nContent-Type: image/jpeg\r\n\r\n' "$B" "$1" "$(basename "$2")"; cat "$2"; printf '\r\n'; }
-{ mk_part probe "$PROBE"; mk_part reference "$REFERENCE"; printf -- '--%s--\r\n' "$B"; } > "$T/pair.body"
-TID=$(curl -sS --cacert "$T/tls/ca.crt" "$U/v1/templates" -H "Authorization: Bearer $TOKEN" \
-        -F "image=@$REFERENCE" | /usr/bin/python3 -c 'import json,sys; print(json.load(sys.stdin)["template_id"])')
-{ mk_part probe "$PROBE"; printf -- '--%s\r\nContent-Disposition: form-data; name="template_id"\r\n\r\n%s\r\n--%s--\r\n' "$B" "$TID" "$B"; } > "$T/tpl.body"
+TID=$(lk_enrol_template "$U" "$T/tls/ca.crt" "$TOKEN" "$REFERENCE")
+lk_verification_bodies "$T" "$B" "$PROBE" "$REFERENCE" "$TID"
 export CTYPE="multipart/form-data; boundary=$B"
 
 rss() { awk '/VmRSS/ {print $2}' "/proc/$PID/status"; }

@@ -16,6 +16,7 @@
 set -euo pipefail
 cd "$(dirname "$0")/../.."
 ROOT=$PWD
+. tests/lib/service.sh
 SECS=${1:-15}
 CONNS=${2:-8}
 if [ -z "${BIN:-}" ]; then
@@ -46,12 +47,10 @@ trap cleanup EXIT
 port() { $PY -c 'import socket; s=socket.socket(); s.bind(("127.0.0.1",0)); print(s.getsockname()[1])'; }
 
 URL=$(bash tests/pg/pg-test-server.sh start "$T/pg" "$(port)" | tail -n1)
-bash certs-example/make-dev-certs.sh "$T/tls" >/dev/null
-"$BIN/likeness" keys init --key-file "$T/keys" >/dev/null
+lk_certs_and_keys "$T"
 TOKEN=$("$BIN/likeness" keys api-create --store "$URL" --key-file "$T/keys" --name bench \
           --scopes verify,enrol 2>/dev/null)
 export TOKEN
-CURL=(curl -sS --cacert "$T/tls/ca.crt")
 
 P1=$(port); P2=$(port); PN=$(port)
 start_replica() { # start_replica N PORT
@@ -75,7 +74,7 @@ burst = 1000000
 INI
   "$BIN/likenessd" --config "$T/r$1.ini" 2>"$T/r$1.log" &
   PIDS+=($!)
-  for _ in $(seq 100); do "${CURL[@]}" "https://localhost:$2/readyz" >/dev/null 2>&1 && return; sleep 0.2; done
+  lk_wait_healthy "https://localhost:$2/readyz" "$T/tls/ca.crt" 100 && return
   echo "bench_replicas: replica $1 did not become ready; its log:" >&2; tail "$T/r$1.log" >&2; exit 1
 }
 start_nginx() { # start_nginx NAME UPSTREAM_PORT...
@@ -86,7 +85,7 @@ start_nginx() { # start_nginx NAME UPSTREAM_PORT...
   "$NGINX" -c "$conf" -p "$d" -g 'daemon off;' 2>"$d/stderr.log" &
   NGINX_PID=$!
   PIDS+=($NGINX_PID)
-  for _ in $(seq 50); do "${CURL[@]}" "https://localhost:$PN/readyz" >/dev/null 2>&1 && return; sleep 0.2; done
+  lk_wait_healthy "https://localhost:$PN/readyz" "$T/tls/ca.crt" 50 && return
   echo "bench_replicas: nginx did not start:" >&2; cat "$d/stderr.log" >&2; exit 1
 }
 
@@ -96,11 +95,8 @@ start_replica 2 "$P2"
 # The bodies of tests/bench/bench_http.sh: the image pair, and the probe plus
 # a template id.
 B=lkbench7b1e
-mk_part() { printf -- '--%s\r\nContent-Disposition: form-data; name="%s"; filename="%s"\r\nContent-Type: image/jpeg\r\n\r\n' "$B" "$1" "$(basename "$2")"; cat "$2"; printf '\r\n'; }
-{ mk_part probe "$PROBE"; mk_part reference "$REFERENCE"; printf -- '--%s--\r\n' "$B"; } > "$T/pair.body"
-TID=$("${CURL[@]}" "https://localhost:$P1/v1/templates" -H "Authorization: Bearer $TOKEN" \
-        -F "image=@$REFERENCE" | $PY -c 'import json,sys; print(json.load(sys.stdin)["template_id"])')
-{ mk_part probe "$PROBE"; printf -- '--%s\r\nContent-Disposition: form-data; name="template_id"\r\n\r\n%s\r\n--%s--\r\n' "$B" "$TID" "$B"; } > "$T/tpl.body"
+TID=$(lk_enrol_template "https://localhost:$P1" "$T/tls/ca.crt" "$TOKEN" "$REFERENCE")
+lk_verification_bodies "$T" "$B" "$PROBE" "$REFERENCE" "$TID"
 export CTYPE="multipart/form-data; boundary=$B"
 
 measure() { # measure LABEL PORT

@@ -7,13 +7,15 @@ Run as a program it renders the nginx configuration:
   python3 lkdeploy.py render-nginx SRC_CONF OUT_DIR LISTEN_PORT TLS_DIR PORT...
 and prints the rendered file's path."""
 import os
-import re
 import shutil
-import socket
 import ssl
 import subprocess
 import sys
 import time
+
+sys.path.insert(0, os.path.join(os.path.dirname(os.path.dirname(os.path.abspath(__file__))), "ref"))
+from lkref import free_port, write_ini  # noqa: E402,F401
+from lkref import make_dev_certs as make_certs  # noqa: E402,F401
 
 
 def fail(msg):
@@ -41,14 +43,6 @@ def need_postgres():
         fail(f"{', '.join(missing)} not found in {PGBIN}: install the PostgreSQL 15 server and "
              "client (apt-get install postgresql-15 postgresql-client-15, or run "
              "deploy/install-deps.sh)")
-
-
-def free_port():
-    s = socket.socket()
-    s.bind(("127.0.0.1", 0))
-    port = s.getsockname()[1]
-    s.close()
-    return port
 
 
 # ---- nginx ----
@@ -140,22 +134,17 @@ def stop_postgres(src, base):
                     os.path.join(base, "pg")], capture_output=True)
 
 
-def make_certs(src, tls_dir):
-    subprocess.run(["sh", os.path.join(src, "certs-example", "make-dev-certs.sh"), tls_dir],
-                   check=True, capture_output=True)
-
-
 def write_replica_config(path, port, tls_dir, model, store_url, key_file, workers=1,
                          checkpoint_interval=100, drain_timeout_s=5):
-    with open(path, "w") as f:
-        f.write(f"[server]\nlisten = 127.0.0.1\nport = {port}\n"
-                f"cert_file = {tls_dir}/server.crt\nkey_file = {tls_dir}/server.key\n"
-                f"workers = {workers}\nqueue_depth = 64\ndrain_timeout_s = {drain_timeout_s}\n"
-                f"per_ip_connection_limit = 64\n"
-                f"[model]\nfile = {model}\n[store]\nurl = {store_url}\n"
-                f"[keys]\nfile = {key_file}\n"
-                f"[limits]\nrate_per_second = 100000\nburst = 100000\n"
-                f"[audit]\ncheckpoint_interval = {checkpoint_interval}\n")
+    write_ini(path, [("server", {"listen": "127.0.0.1", "port": port,
+                                 "cert_file": f"{tls_dir}/server.crt",
+                                 "key_file": f"{tls_dir}/server.key", "workers": workers,
+                                 "queue_depth": 64, "drain_timeout_s": drain_timeout_s,
+                                 "per_ip_connection_limit": 64}),
+                     ("model", {"file": model}), ("store", {"url": store_url}),
+                     ("keys", {"file": key_file}),
+                     ("limits", {"rate_per_second": 100000, "burst": 100000}),
+                     ("audit", {"checkpoint_interval": checkpoint_interval})])
 
 
 def tls_context(ca_file):

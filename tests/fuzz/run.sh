@@ -73,7 +73,11 @@ for t in "${TARGETS[@]}"; do
   corpus="$WORK/$t"
   rm -rf "$corpus" "$ART/$t"
   mkdir -p "$corpus" "$ART/$t"
-  cp "$HERE/corpus/$t"/* "$corpus"/ 2>/dev/null || true
+  if [ -z "$(ls -A "$HERE/corpus/$t" 2>/dev/null)" ]; then
+    echo "fuzz: no seeds in tests/fuzz/corpus/$t (regenerate: python3 tests/fuzz/make_seeds.py)" >&2
+    exit 1
+  fi
+  cp "$HERE/corpus/$t"/* "$corpus"/
   if [ -d "$HERE/regressions/$t" ]; then
     cp "$HERE/regressions/$t"/* "$corpus"/ 2>/dev/null || true
   fi

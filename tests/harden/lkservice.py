@@ -14,8 +14,12 @@ import signal
 import socket
 import ssl
 import subprocess
+import sys
 import tempfile
 import time
+
+sys.path.insert(0, os.path.join(os.path.dirname(os.path.dirname(os.path.abspath(__file__))), "ref"))
+from lkref import free_port, init_key_file, make_dev_certs, write_ini  # noqa: E402,F401
 
 SRC = os.environ.get("LIKENESS_SOURCE",
                      os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__)))))
@@ -42,14 +46,6 @@ def lfw(name, i):
 def read(path):
     with open(path, "rb") as f:
         return f.read()
-
-
-def free_port():
-    s = socket.socket()
-    s.bind(("127.0.0.1", 0))
-    port = s.getsockname()[1]
-    s.close()
-    return port
 
 
 def san_env():
@@ -92,21 +88,18 @@ class Service:
         self.proc = None
         self.tokens = {}
         if not os.path.exists(os.path.join(self.dir, "tls", "server.crt")):
-            subprocess.run(["sh", os.path.join(SRC, "certs-example", "make-dev-certs.sh"),
-                            os.path.join(self.dir, "tls")], check=True, capture_output=True)
+            make_dev_certs(SRC, os.path.join(self.dir, "tls"))
         if not os.path.exists(os.path.join(self.dir, "keys")):
-            cli("keys", "init", "--key-file", os.path.join(self.dir, "keys"), check=True)
+            init_key_file(LIKENESS, os.path.join(self.dir, "keys"), env=san_env())
         srv = {"port": self.port, "cert_file": "tls/server.crt", "key_file": "tls/server.key",
                "workers": 2, "queue_depth": 64}
         srv.update(server or {})
         lim = {"rate_per_second": 100000, "burst": 100000}
         lim.update(limits or {})
-        with open(self.cfg, "w") as f:
-            f.write("[server]\n" + "".join(f"{k} = {v}\n" for k, v in srv.items()))
-            f.write(f"[model]\nfile = {MODEL}\n[store]\nurl = sqlite:{self.store_path}\n")
-            f.write("[keys]\nfile = keys\n[limits]\n" +
-                    "".join(f"{k} = {v}\n" for k, v in lim.items()))
-            f.write("[audit]\ncheckpoint_interval = 100\n" + extra)
+        write_ini(self.cfg, [("server", srv), ("model", {"file": MODEL}),
+                             ("store", {"url": f"sqlite:{self.store_path}"}),
+                             ("keys", {"file": "keys"}), ("limits", lim),
+                             ("audit", {"checkpoint_interval": 100})], extra)
         self.ctx = ssl.create_default_context(cafile=os.path.join(self.dir, "tls", "ca.crt"))
 
     @property

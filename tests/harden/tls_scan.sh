@@ -11,6 +11,7 @@
 set -euo pipefail
 cd "$(dirname "$0")/../.."
 ROOT=$PWD
+. tests/lib/service.sh
 OUT=${1:?usage: tls_scan.sh OUT.json}
 case "$OUT" in /*) ;; *) OUT=$PWD/$OUT ;; esac
 BIN=${BIN:-${LIKENESS_BIN:-$ROOT/build-release/bin}}
@@ -29,27 +30,12 @@ cleanup() {
   rm -rf "$T"
 }
 trap cleanup EXIT
-bash certs-example/make-dev-certs.sh "$T/tls" >/dev/null
-ASAN_OPTIONS=detect_leaks=0 "$BIN/likeness" keys init --key-file "$T/keys" >/dev/null 2>&1
-cat > "$T/cfg.ini" <<INI
-[server]
-port = $PORT
-cert_file = tls/server.crt
-key_file = tls/server.key
-workers = 1
-[model]
-file = $ROOT/models/likeness-lfw.lkmodel
-[store]
-url = sqlite:$T/store.db
-[keys]
-file = keys
-INI
-"$BIN/likenessd" --config "$T/cfg.ini" 2>"$T/log" &
-PID=$!
-for _ in $(seq 150); do
-  kill -0 "$PID" 2>/dev/null || { echo "tls_scan: likenessd did not start" >&2; cat "$T/log" >&2; exit 1; }
-  curl -s --cacert "$T/tls/ca.crt" "https://127.0.0.1:$PORT/healthz" >/dev/null && break; sleep 0.2
-done
+lk_service_setup "$T" "$PORT" "workers = 1"
+lk_service_start "$T"
+PID=$LK_PID
+# A slow start (sanitized build) is scanned anyway; an exit is not.
+lk_wait_healthy "https://127.0.0.1:$PORT/healthz" "$T/tls/ca.crt" 150 "$PID" || kill -0 "$PID" 2>/dev/null ||
+  { echo "tls_scan: likenessd did not start" >&2; cat "$T/log" >&2; exit 1; }
 rm -f "$OUT"
 # -p protocols, -s cipher categories, -f forward secrecy, -S server defaults
 # (certificate), -h headers, -U vulnerabilities. The certificate is from a development CA the scanner does

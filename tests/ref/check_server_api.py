@@ -31,7 +31,6 @@ import os
 import re
 import shutil
 import signal
-import socket
 import sqlite3
 import ssl
 import stat
@@ -44,7 +43,7 @@ import time
 import zlib
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from lkref import check, finish, skip  # noqa: E402
+from lkref import check, finish, free_port, skip  # noqa: E402
 
 SRC = os.environ.get("LIKENESS_SOURCE",
                      os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__)))))
@@ -119,12 +118,6 @@ def b64(data):
 
 def run(args, timeout=120, **kw):
     return subprocess.run(args, capture_output=True, text=True, timeout=timeout, **kw)
-
-
-def free_port():
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 def json_objects(text):

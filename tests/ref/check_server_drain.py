@@ -7,14 +7,14 @@ Needs $LIKENESS_BIN/likenessd and likeness, curl, and LFW in $LIKENESS_SHARED.""
 import json
 import os
 import signal
-import socket
 import subprocess
 import sys
 import tempfile
 import time
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from lkref import check, finish, skip  # noqa: E402
+from lkref import (api_create, check, finish, free_port, init_key_file,  # noqa: E402
+                   make_dev_certs, skip, start_likenessd, write_ini)
 
 SRC = os.environ.get("LIKENESS_SOURCE", ".")
 BIN = os.environ.get("LIKENESS_BIN", "build/bin")
@@ -27,32 +27,22 @@ for f in (os.path.join(BIN, "likenessd"), A, B):
         skip(f"{f} is missing")
 
 d = tempfile.mkdtemp(prefix="lk-drain-")
-subprocess.run(["bash", os.path.join(SRC, "certs-example", "make-dev-certs.sh"), d + "/tls"],
-               check=True, capture_output=True)
-subprocess.run([BIN + "/likeness", "keys", "init", "--key-file", d + "/keys"], check=True,
-               capture_output=True)
-s = socket.socket()
-s.bind(("127.0.0.1", 0))
-port = s.getsockname()[1]
-s.close()
+make_dev_certs(SRC, d + "/tls")
+init_key_file(BIN + "/likeness", d + "/keys")
+port = free_port()
 cfg = d + "/cfg.ini"
-with open(cfg, "w") as f:
-    f.write(f"[server]\nport = {port}\ncert_file = tls/server.crt\nkey_file = tls/server.key\n"
-            f"workers = 1\nqueue_depth = 16\ndrain_timeout_s = 60\n"
-            f"[templates]\npurge_interval_s = 1\n"
-            f"[model]\nfile = {SRC}/models/likeness-lfw.lkmodel\n[store]\nurl = sqlite:{d}/store.db\n"
-            f"[keys]\nfile = keys\n[audit]\ncheckpoint_interval = 1000\n")
-token = subprocess.run([BIN + "/likeness", "keys", "api-create", "--config", cfg, "--name", "t",
-                        "--scopes", "verify,audit,enrol"], check=True, capture_output=True,
-                       text=True).stdout.strip()
-log = open(d + "/log", "w")
-srv = subprocess.Popen([BIN + "/likenessd", "--config", cfg], stderr=log)
+write_ini(cfg, [("server", {"port": port, "cert_file": "tls/server.crt",
+                            "key_file": "tls/server.key", "workers": 1, "queue_depth": 16,
+                            "drain_timeout_s": 60}),
+                ("templates", {"purge_interval_s": 1}),
+                ("model", {"file": f"{SRC}/models/likeness-lfw.lkmodel"}),
+                ("store", {"url": f"sqlite:{d}/store.db"}),
+                ("keys", {"file": "keys"}),
+                ("audit", {"checkpoint_interval": 1000})])
+token = api_create(BIN + "/likeness", cfg, "t", "verify,audit,enrol")
 url = f"https://127.0.0.1:{port}"
 curl = ["curl", "-sS", "--cacert", d + "/tls/ca.crt"]
-for _ in range(100):
-    if subprocess.run(curl + [url + "/healthz"], capture_output=True).returncode == 0:
-        break
-    time.sleep(0.2)
+srv = start_likenessd(BIN + "/likenessd", cfg, d + "/log", curl, url + "/healthz", tries=100)
 
 # A template that lives one second is gone from the file soon after.
 import sqlite3  # noqa: E402

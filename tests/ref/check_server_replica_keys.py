@@ -14,15 +14,14 @@ import json
 import os
 import shutil
 import signal
-import socket
 import sqlite3
 import subprocess
 import sys
 import tempfile
-import time
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from lkref import check, finish, skip  # noqa: E402
+from lkref import (api_create, check, finish, free_port, init_key_file,  # noqa: E402
+                   make_dev_certs, skip, start_likenessd, write_ini)
 
 SRC = os.environ.get("LIKENESS_SOURCE", ".")
 BIN = os.environ.get("LIKENESS_BIN", "build/bin")
@@ -38,18 +37,8 @@ if not shutil.which("curl"):
     skip("curl is not installed")
 
 d = tempfile.mkdtemp(prefix="lk-replicas-")
-subprocess.run(["bash", os.path.join(SRC, "certs-example", "make-dev-certs.sh"), d + "/tls"],
-               check=True, capture_output=True)
-subprocess.run([BIN + "/likeness", "keys", "init", "--key-file", d + "/keys.orig"], check=True,
-               capture_output=True)
-
-
-def free_port():
-    s = socket.socket()
-    s.bind(("127.0.0.1", 0))
-    port = s.getsockname()[1]
-    s.close()
-    return port
+make_dev_certs(SRC, d + "/tls")
+init_key_file(BIN + "/likeness", d + "/keys.orig")
 
 
 def setup(name, keyfile_src):
@@ -60,12 +49,13 @@ def setup(name, keyfile_src):
     os.chmod(kf, 0o600)
     port = free_port()
     cfg = f"{d}/{name}/cfg.ini"
-    with open(cfg, "w") as f:
-        f.write(f"[server]\nport = {port}\ncert_file = {d}/tls/server.crt\n"
-                f"key_file = {d}/tls/server.key\nworkers = 1\nqueue_depth = 16\n"
-                f"drain_timeout_s = 30\n[model]\nfile = {MODEL}\n"
-                f"[store]\nurl = sqlite:{d}/store.db\n[keys]\nfile = {kf}\n"
-                f"[audit]\ncheckpoint_interval = 1000\n")
+    write_ini(cfg, [("server", {"port": port, "cert_file": f"{d}/tls/server.crt",
+                                "key_file": f"{d}/tls/server.key", "workers": 1,
+                                "queue_depth": 16, "drain_timeout_s": 30}),
+                    ("model", {"file": MODEL}),
+                    ("store", {"url": f"sqlite:{d}/store.db"}),
+                    ("keys", {"file": kf}),
+                    ("audit", {"checkpoint_interval": 1000})])
     return cfg, kf, port
 
 
@@ -73,23 +63,13 @@ cfg_a, kf_a, port_a = setup("a", d + "/keys.orig")
 cfg_b, kf_b, port_b = setup("b", d + "/keys.orig")
 cfg_c, kf_c, _ = setup("cli", d + "/keys.orig")
 orig = open(d + "/keys.orig", "rb").read()
-token = subprocess.run([BIN + "/likeness", "keys", "api-create", "--config", cfg_c, "--name", "t",
-                        "--scopes", "verify,enrol,audit"], check=True, capture_output=True,
-                       text=True).stdout.strip()
+token = api_create(BIN + "/likeness", cfg_c, "t", "verify,enrol,audit")
 curl = ["curl", "-sS", "--cacert", d + "/tls/ca.crt", "-H", "Authorization: Bearer " + token]
 
 
 def start(name, cfg, port):
-    log = open(f"{d}/{name}/log", "w")
-    p = subprocess.Popen([BIN + "/likenessd", "--config", cfg], stderr=log)
-    for _ in range(150):
-        if p.poll() is not None:
-            break
-        if subprocess.run(curl + [f"https://127.0.0.1:{port}/healthz"],
-                          capture_output=True).returncode == 0:
-            break
-        time.sleep(0.2)
-    return p
+    return start_likenessd(BIN + "/likenessd", cfg, f"{d}/{name}/log", curl,
+                           f"https://127.0.0.1:{port}/healthz")
 
 
 def call(args):
@@ -157,8 +137,7 @@ try:
           "every copy of the key file is left byte for byte as it was")
 
     # A replica whose key file does not hold the KEK cannot start.
-    subprocess.run([BIN + "/likeness", "keys", "init", "--key-file", d + "/keys.other"],
-                   check=True, capture_output=True)
+    init_key_file(BIN + "/likeness", d + "/keys.other")
     cfg_x, _, port_x = setup("x", d + "/keys.other")
     srv_x = subprocess.Popen([BIN + "/likenessd", "--config", cfg_x], stderr=subprocess.PIPE,
                              text=True)
