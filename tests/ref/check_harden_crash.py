@@ -217,6 +217,11 @@ for k in range(5):
     rot.wait()
     serving.set()
     tr.join(timeout=60)
+    # While the rotation ran (and was killed), every verification that got an
+    # answer got 200; only a killed service may end a request without one.
+    check((answers or both) and all(a == 200 for a in answers),
+          f"rotation round {k}: {len(answers)} verifications during the killed rotation, "
+          f"all 200 ({sorted(set(answers))})")
     san_check(f"rotation round {k}")
     mode, rc, txt = key_file_ok()
     check(mode == 0o600 and rc == 0, f"rotation round {k} (rotate killed after {delay:.2f} s"
