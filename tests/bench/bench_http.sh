@@ -23,24 +23,11 @@ command -v wrk >/dev/null || { echo "bench_http: wrk is not installed (apt-get i
 
 T=$(mktemp -d)
 PORT=$((20000 + RANDOM % 20000))
-cleanup() { [ -n "${PID:-}" ] && kill "$PID" 2>/dev/null; wait 2>/dev/null; rm -rf "$T"; }
+cleanup() { [ -n "${LK_PID:-}" ] && kill "$LK_PID" 2>/dev/null; wait 2>/dev/null; rm -rf "$T"; }
 trap cleanup EXIT
-lk_service_setup "$T" "$PORT" "queue_depth = 256" "[limits]
-rate_per_second = 1000000
-burst = 1000000"
-TOKEN=$(lk_api_key "$T/cfg.ini" bench verify,enrol)
-export TOKEN
-lk_service_start "$T"
+lk_load_service "$T" "$PORT" bench lkbench7b1e "$PROBE" "$REFERENCE"
 PID=$LK_PID
 U=https://127.0.0.1:$PORT
-lk_wait_healthy "$U/healthz" "$T/tls/ca.crt" 50 "$PID" ||
-  { echo "bench_http: likenessd did not start" >&2; tail -20 "$T/log" >&2; exit 1; }
-
-# Multipart body of the two images, and of the probe plus a template id.
-B=lkbench7b1e
-TID=$(lk_enrol_template "$U" "$T/tls/ca.crt" "$TOKEN" "$REFERENCE")
-lk_verification_bodies "$T" "$B" "$PROBE" "$REFERENCE" "$TID"
-export CTYPE="multipart/form-data; boundary=$B"
 
 rss() { awk '/VmRSS/ {print $2}' "/proc/$PID/status"; }
 echo "likenessd $(nproc) cores, workers = cores, $CONNS connections, ${SECS}s per run"

@@ -32,26 +32,14 @@ T=$(mktemp -d)
 PORT=$((20000 + RANDOM % 20000))
 cleanup() {
   [ -n "${SAMPLER:-}" ] && kill "$SAMPLER" 2>/dev/null
-  [ -n "${PID:-}" ] && kill "$PID" 2>/dev/null
+  [ -n "${LK_PID:-}" ] && kill "$LK_PID" 2>/dev/null
   wait 2>/dev/null
   rm -rf "$T"
 }
 trap cleanup EXIT
-lk_service_setup "$T" "$PORT" "queue_depth = 256" "[limits]
-rate_per_second = 1000000
-burst = 1000000"
-TOKEN=$(lk_api_key "$T/cfg.ini" soak verify,enrol)
-export TOKEN
-lk_service_start "$T"
+lk_load_service "$T" "$PORT" soak lksoak5e1f "$PROBE" "$REFERENCE"
 PID=$LK_PID
 U=https://127.0.0.1:$PORT
-lk_wait_healthy "$U/healthz" "$T/tls/ca.crt" 100 "$PID" ||
-  { echo "soak: likenessd did not start" >&2; tail -20 "$T/log" >&2; exit 1; }
-
-B=lksoak5e1f
-TID=$(lk_enrol_template "$U" "$T/tls/ca.crt" "$TOKEN" "$REFERENCE")
-lk_verification_bodies "$T" "$B" "$PROBE" "$REFERENCE" "$TID"
-export CTYPE="multipart/form-data; boundary=$B"
 
 rss() { awk '/VmRSS/ {print $2}' "/proc/$PID/status"; }
 ( while kill -0 "$PID" 2>/dev/null; do echo "$(date +%s) $(rss)"; sleep 10; done ) > "$T/rss" &
