@@ -30,7 +30,9 @@
 _Static_assert(AUDIT_LOCK_KEY == INT64_C(5497573889621181524), "key as documented");
 _Static_assert(SCHEMA_LOCK_KEY == INT64_C(5497573889921992781), "key as documented");
 
-/* Connections kept per handle. A thread that calls back into the store from
+/* Connections kept per handle: more than the worker threads of a service
+ * on a typical 2-8 core machine, well under PostgreSQL's default
+ * max_connections of 100 for a dozen replicas. A thread that calls back into the store from
  * a list callback while holding one may open up to POOL_HARD more, so a
  * nested call never waits for a connection its own caller holds. */
 #define POOL_SIZE 8

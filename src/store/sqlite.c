@@ -20,6 +20,9 @@
 /* "LKNS" in the database header (PRAGMA application_id), so that a file of
  * another program is refused instead of migrated. */
 #define APPLICATION_ID 0x4c4b4e53
+/* How long a writer waits for another process's write lock: longer than any
+ * one transaction here takes (a key rotation's batch), short enough that a
+ * stuck writer surfaces as an error within a request's patience. */
 #define BUSY_TIMEOUT_MS 10000
 /* Appends retry a transaction that SQLite answered with SQLITE_BUSY despite
  * the busy timeout (e.g. a WAL snapshot that went stale); exponential
