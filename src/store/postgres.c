@@ -32,7 +32,7 @@ _Static_assert(SCHEMA_LOCK_KEY == INT64_C(5497573889921992781), "key as document
 
 /* Connections kept per handle: more than the worker threads of a service
  * on a typical 2-8 core machine, well under PostgreSQL's default
- * max_connections of 100 for a dozen replicas. A thread that calls back into the store from
+ * max_connections of 100 (recalled from memory) for a dozen replicas. A thread that calls back into the store from
  * a list callback while holding one may open up to POOL_HARD more, so a
  * nested call never waits for a connection its own caller holds. */
 #define POOL_SIZE 8
