@@ -8,6 +8,7 @@
 #include <ini.h>
 #include <limits.h>
 #include <math.h>
+#include <stdbool.h>
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
@@ -250,16 +251,35 @@ lk_code lk_config_load(lk_config *c, const char *path, lk_error *err)
                                 strerror(errno));
         /* libinih (as Debian builds it, INI_MAX_LINE 200 bytes with the
          * newline and the NUL) splits longer lines and would misread them:
-         * refuse them plainly. */
+         * refuse them plainly. It also reads an indented line as the
+         * continuation of the previous key, replacing its value and keeping
+         * a ';' comment in it; refuse those too (indented comments and blank
+         * lines are fine). */
         int ch, col = 0, lineno = 1;
+        bool indented = false;
         while ((ch = getc(f)) != EOF) {
             if (ch == '\n') {
                 lineno++;
                 col = 0;
-            } else if (++col > 198) {
+                indented = false;
+                continue;
+            }
+            if (++col > 198) {
                 fclose(f);
                 return lk_error_set(err, LK_ERR_CONFIG, "%s: line %d is longer than 198 characters",
                                     path, lineno);
+            }
+            if (col == 1 && (ch == ' ' || ch == '\t'))
+                indented = true;
+            else if (indented && ch != ' ' && ch != '\t' && ch != '\r') {
+                if (ch != ';' && ch != '#') {
+                    fclose(f);
+                    return lk_error_set(err, LK_ERR_CONFIG,
+                                        "%s: line %d is indented, which would continue the "
+                                        "previous value; write each key = value on one line "
+                                        "starting at the margin", path, lineno);
+                }
+                indented = false;
             }
         }
         rewind(f);
