@@ -101,6 +101,13 @@ static lk_code set_key(parse_ctx *p, const key_def *k, const char *value)
      * string is longer, so it has a short name. */
     if (!strcmp(k->name, "tls_priorities") && !strcmp(value, "default"))
         value = LK_CONFIG_TLS_PRIORITIES;
+    /* ';' starts an inline comment in this format (libinih) wherever a blank
+     * precedes it, so a value holding one would not survive being printed
+     * and read again: refuse it. */
+    if (strchr(value, ';'))
+        return lk_error_set(p->err, LK_ERR_CONFIG,
+                            "%s: [%s] %s may not contain ';' (it starts a comment)", p->origin,
+                            k->section, k->name);
     if (k->type == K_STR || k->type == K_PATH) {
         int ok = k->type == K_PATH ? resolve_path(p, value, field, k->size)
                                    : snprintf(field, k->size, "%s", value) < (int)k->size;
@@ -153,6 +160,11 @@ static int on_entry(void *user, const char *section, const char *name, const cha
         if (!cl || strlen(section + 7) >= sizeof cl->name) {
             lk_error_set(p->err, LK_ERR_CONFIG, "%s: too many [client:...] sections (at most %d) "
                          "or a name over 127 bytes", p->origin, LK_CONFIG_MAX_CLIENTS);
+            return p->failed = 1, 0;
+        }
+        if (strchr(value, ';') || strchr(section, ';')) {
+            lk_error_set(p->err, LK_ERR_CONFIG, "%s: [%s] may not contain ';' (it starts a comment)",
+                         p->origin, section);
             return p->failed = 1, 0;
         }
         if (!strcmp(name, "subject")) {

@@ -81,8 +81,11 @@ for t in "${TARGETS[@]}"; do
   if [ -d "$HERE/regressions/$t" ]; then
     cp "$HERE/regressions/$t"/* "$corpus"/ 2>/dev/null || true
   fi
+  # A fixed seed (LIKENESS_FUZZ_SEED, default 1) makes a CI run repeat the
+  # same inputs, so it passes or fails the same way on every machine; set
+  # another seed (or 0 for a random one) for exploratory runs.
   args=(-max_total_time="$SECONDS_EACH" -rss_limit_mb=2048 -timeout=10 -print_final_stats=1
-        -artifact_prefix="$ART/$t/")
+        -seed="${LIKENESS_FUZZ_SEED:-1}" -artifact_prefix="$ART/$t/")
   if dict_for "$t" >"$WORK/$t.dict"; then
     args+=(-dict="$WORK/$t.dict")
   fi

@@ -113,6 +113,8 @@ int main(void)
     expect_error("client without a CA", buf, "client_ca_file");
     snprintf(buf, sizeof buf, "%s[server]\nlisten = 127.0.0.1\n  0.0.0.0 ; why\n", base);
     expect_error("continuation line", buf, "indented");
+    snprintf(buf, sizeof buf, "%s[server]\nlisten =; 127.0.0.1\n", base);
+    expect_error("';' in a value", buf, "';'");
     char longline[400];
     snprintf(longline, sizeof longline, "%s[server]\nlisten = %0250d\n", base, 1);
     expect_error("line over libinih's limit", longline, "longer than 198");
