@@ -210,6 +210,14 @@ void srv_problem_page(srv_request *r)
     srv_reply_text(r, 200, "text/plain; charset=utf-8", t);
 }
 
+/* A failure that is not the request's fault: logged with the request id
+ * and the module's message (never request data), answered 500. */
+static void internal_error(srv_request *r, const char *what, const lk_error *e)
+{
+    srv_log("%s: %s failed: %s", r->request_id, what, e ? e->message : "out of memory");
+    srv_problem(r, "internal-error", NULL);
+}
+
 static void template_not_found(srv_request *r, const char *id)
 {
     cJSON *j = problem_new(r, "template-not-found", NULL);
@@ -577,9 +585,8 @@ static bool analyse(lk_server *s, srv_request *r, srv_worker_state *w, const uin
     else if (rc == LK_ERR_IMAGE_TOO_LARGE)
         slug = "image-too-large";
     else if (rc) {
-        srv_log("%s: analysis failed: %s", r->request_id, e.message);
         snprintf(reasons, rcap, "%s", lk_code_name(rc));
-        srv_problem(r, "internal-error", NULL);
+        internal_error(r, "analysis", &e);
         return false;
     }
     if (slug) {
@@ -657,8 +664,7 @@ static bool load_template(lk_server *s, srv_request *r, srv_worker_state *w, con
         return false;
     }
     if (rc) {
-        srv_log("%s: store: %s", r->request_id, e.message);
-        srv_problem(r, "internal-error", NULL);
+        internal_error(r, "store read", &e);
         return false;
     }
     sync_keys(s, false);
@@ -723,8 +729,7 @@ static void handle_verify(lk_server *s, srv_request *r, srv_worker_state *w)
     if (!analyse(s, r, w, q.probe, q.probe_len, "probe", &ap, &qp, reasons, sizeof reasons))
         goto refused;
     if (lk_model_project(s->model, w->feat, w->proj_probe, &e)) {
-        srv_log("%s: projection failed: %s", r->request_id, e.message);
-        srv_problem(r, "internal-error", NULL);
+        internal_error(r, "projection", &e);
         goto refused;
     }
     if (tid) {
@@ -742,14 +747,13 @@ static void handle_verify(lk_server *s, srv_request *r, srv_worker_state *w)
                      sizeof reasons))
             goto refused;
         if (lk_model_project(s->model, w->feat, w->proj_other, &e)) {
-            srv_problem(r, "internal-error", NULL);
+            internal_error(r, "projection", &e);
             goto refused;
         }
     }
     double tc = srv_now(), svm, score;
     if (lk_model_score_projected(s->model, w->proj_probe, w->proj_other, &svm, &score, &e)) {
-        srv_log("%s: scoring failed: %s", r->request_id, e.message);
-        srv_problem(r, "internal-error", NULL);
+        internal_error(r, "scoring", &e);
         goto refused;
     }
     double compare_ms = (srv_now() - tc) * 1e3;
@@ -857,7 +861,7 @@ static void handle_enrol(lk_server *s, srv_request *r, srv_worker_state *w)
             goto refused;
         cJSON_AddItemToArray(qualities, qi);
         if (lk_model_project(s->model, w->feat, w->proj_other, &e)) {
-            srv_problem(r, "internal-error", NULL);
+            internal_error(r, "projection", &e);
             goto refused;
         }
         for (size_t k = 0; k < w->k; k++)
@@ -893,8 +897,7 @@ static void handle_enrol(lk_server *s, srv_request *r, srv_worker_state *w)
     size_t len = 0;
     sync_keys(s, false);
     if (lk_template_seal(s->keys, &b, w->acc, w->k, &rec, &len, meta.key_id, &e)) {
-        srv_log("%s: enrolment failed: %s", r->request_id, e.message);
-        srv_problem(r, "internal-error", NULL);
+        internal_error(r, "sealing", &e);
         snprintf(reasons, sizeof reasons, "%s", lk_code_name(e.code));
         goto refused;
     }
@@ -942,8 +945,7 @@ static void handle_template(lk_server *s, srv_request *r)
             return;
         }
         if (rc) {
-            srv_log("%s: delete failed: %s", r->request_id, e.message);
-            srv_problem(r, "internal-error", NULL);
+            internal_error(r, "erasure", &e);
             return;
         }
         srv_reply_text(r, 204, "", NULL);
@@ -955,8 +957,7 @@ static void handle_template(lk_server *s, srv_request *r)
         return;
     }
     if (rc) {
-        srv_log("%s: store: %s", r->request_id, e.message);
-        srv_problem(r, "internal-error", NULL);
+        internal_error(r, "store read", &e);
         return;
     }
     reply_json(r, 200, template_json(&meta, true), "application/json");
@@ -1062,14 +1063,14 @@ static void handle_audit(lk_server *s, srv_request *r)
     }
     audit_page p = {malloc(4096), 0, 4096, after, false};
     if (!p.buf) {
-        srv_problem(r, "internal-error", NULL);
+        internal_error(r, "audit page", NULL);
         return;
     }
     p.buf[0] = '\0';
     lk_error e;
     if (lk_store_audit_list(s->store, after, limit, page_add, &p, &e) || p.oom) {
         free(p.buf);
-        srv_problem(r, "internal-error", NULL);
+        internal_error(r, "audit listing", p.oom ? NULL : &e);
         return;
     }
     uint64_t head = lk_store_audit_head(s->store);

@@ -19,19 +19,6 @@
 
 #include "handlers.h"
 
-static void logf_(const char *fmt, ...) __attribute__((format(printf, 1, 2)));
-static void logf_(const char *fmt, ...)
-{
-    char ts[32];
-    srv_rfc3339_ms(srv_unix_ms(), ts);
-    va_list ap;
-    va_start(ap, fmt);
-    fprintf(stderr, "%s likenessd: ", ts);
-    vfprintf(stderr, fmt, ap);
-    fputc('\n', stderr);
-    va_end(ap);
-}
-
 void srv_log(const char *fmt, ...)
 {
     char ts[32], line[1024];
@@ -216,7 +203,7 @@ static void on_completed(void *cls, struct MHD_Connection *conn, void **con_cls,
     int status = r->replied ? r->status : 0;
     srv_metrics_request(s->metrics, r->route, r->method, status, dt);
     /* Access log: never bodies, images or features. */
-    logf_("%s %s %s %d %.1fms caller=%s%s", r->request_id, r->method, srv_route_label(r->route),
+    srv_log("%s %s %s %d %.1fms caller=%s%s", r->request_id, r->method, srv_route_label(r->route),
           status, dt * 1e3, r->caller[0] ? r->caller : "-",
           toe == MHD_REQUEST_TERMINATED_COMPLETED_OK ? "" : " (connection ended early)");
     srv_request_free(r);
@@ -442,7 +429,7 @@ static void mhd_log(void *cls, const char *fmt, va_list ap)
     size_t n = strlen(line);
     while (n && (line[n - 1] == '\n' || line[n - 1] == '\r'))
         line[--n] = '\0';
-    logf_("http: %s", line);
+    srv_log("http: %s", line);
 }
 
 lk_server *lk_server_new(const lk_config *cfg, lk_error *err)
@@ -475,9 +462,9 @@ lk_server *lk_server_new(const lk_config *cfg, lk_error *err)
     double days = 0;
     if (srv_check_certificate(s->cert_pem, s->key_pem, fp, subject, sizeof subject, &days, err))
         goto fail;
-    logf_("certificate %s, SHA-256 fingerprint %s, expires in %.0f days", subject, fp, days);
+    srv_log("certificate %s, SHA-256 fingerprint %s, expires in %.0f days", subject, fp, days);
     if (days < 30)
-        logf_("WARNING: the certificate expires in %.1f days; renew it", days);
+        srv_log("WARNING: the certificate expires in %.1f days; renew it", days);
 
     int workers = cfg->workers > 0 ? cfg->workers : (int)sysconf(_SC_NPROCESSORS_ONLN);
     if (workers < 1)
@@ -551,7 +538,7 @@ lk_code lk_server_listen(lk_server *s, lk_error *err)
                      cfg->tls_priorities);
         return err ? err->code : LK_ERR_CONFIG;
     }
-    logf_("listening on https://%s%s%s:%d/ with %d workers, queue %d, TLS priorities %s%s",
+    srv_log("listening on https://%s%s%s:%d/ with %d workers, queue %d, TLS priorities %s%s",
           sa->sa_family == AF_INET6 ? "[" : "", cfg->listen, sa->sa_family == AF_INET6 ? "]" : "",
           cfg->port, workers, cfg->queue_depth, cfg->tls_priorities,
           s->ca_pem ? ", client certificates requested" : "");
@@ -582,7 +569,7 @@ lk_code lk_server_run(lk_server *s, lk_error *err)
             srv_purge_expired(s);
         }
     }
-    logf_("stopping: no new connections; draining %d requests in flight",
+    srv_log("stopping: no new connections; draining %d requests in flight",
           atomic_load(&s->inflight));
     atomic_store(&s->draining, true);
     MHD_socket ls = MHD_quiesce_daemon(s->daemon);
@@ -594,7 +581,7 @@ lk_code lk_server_run(lk_server *s, lk_error *err)
         nanosleep(&ts, NULL);
     }
     if (atomic_load(&s->inflight) > 0)
-        logf_("drain timeout: %d requests still in flight", atomic_load(&s->inflight));
+        srv_log("drain timeout: %d requests still in flight", atomic_load(&s->inflight));
     else {
         /* Let the polling thread send the last answers. */
         struct timespec ts = {0, 200 * 1000000};
@@ -605,7 +592,7 @@ lk_code lk_server_run(lk_server *s, lk_error *err)
     srv_pool_free(s->pool);
     s->pool = NULL;
     srv_core_shutdown(s);
-    logf_("stopped");
+    srv_log("stopped");
     return LK_OK;
 }
 
